@@ -1,0 +1,81 @@
+"""What every record source hands to the engine, and the protocol sources follow.
+
+A source turns bytes into :class:`RawBatch` objects: a pandas frame of records as read
+(no schema applied yet) plus where each row came from, and the rows that could not even
+be split into fields. Parsing against the schema happens later, in ``stream.encoding``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from typing import Iterator, Protocol, runtime_checkable
+
+import numpy as np
+import pandas as pd
+
+
+@dataclasses.dataclass(frozen=True)
+class Reject:
+    """A record kept out of learning, with where it was and why.
+
+    ``line`` is the 1-based physical line in ``origin`` (the header is line 1 for CSV);
+    ``field`` and ``value`` are ``None`` when the whole record is at fault.
+    """
+
+    origin: str
+    line: int
+    field: str | None
+    value: str | None
+    reason: str
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+    def message(self) -> str:
+        """One line such as "data.csv line 1042, field 'supply_temp': 'abc' is not a number"."""
+        where = f"{self.origin} line {self.line}"
+        if self.field is not None:
+            where += f", field {self.field!r}"
+        if self.value is not None:
+            return f"{where}: {self.value!r} {self.reason}"
+        return f"{where}: {self.reason}"
+
+
+@dataclasses.dataclass
+class RawBatch:
+    """Consecutive records of one origin, as read.
+
+    Attributes
+    ----------
+    frame
+        One row per record that could be split into fields; columns as named in the source.
+    origin
+        The file name, or ``-`` for standard input.
+    lines
+        int64 array, the 1-based physical line of each row of ``frame``.
+    rejects
+        Records of this stretch that could not be split into fields.
+    """
+
+    frame: pd.DataFrame
+    origin: str
+    lines: np.ndarray
+    rejects: list[Reject] = dataclasses.field(default_factory=list)
+
+    def __len__(self) -> int:
+        return len(self.frame)
+
+
+@runtime_checkable
+class Source(Protocol):
+    """A stream of records: iterate batches, then close."""
+
+    name: str
+
+    def batches(self) -> Iterator[RawBatch]:
+        """Yield batches in stream order until the source ends."""
+        ...
+
+    def close(self) -> None:
+        """Release files and connections; safe to call twice."""
+        ...

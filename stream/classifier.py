@@ -1,0 +1,179 @@
+"""TreeClassifier: the Python face of the compiled Hoeffding tree.
+
+>>> import numpy as np
+>>> from stream.classifier import TreeClassifier
+>>> X = np.array([[0.1], [0.9], [0.2], [0.8]])
+>>> y = np.array([0, 1, 0, 1], dtype=np.int32)
+>>> model = TreeClassifier(["pressure"], ["numeric"])
+>>> scored = model.learn(X, y, classes=["low", "high"])
+>>> scored.pred.tolist()          # each record is scored before it is learned
+[-1, 0, 0, 0]
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from .classifier_kernel import has_room, leaf_cap, learn_batch, predict_batch
+from .errors import ConfigError
+from .settings import TreeSettings
+from .tables import (DEPTH, S_ACTIVE, S_CHILD_USED, S_CLASSES_SEEN, S_DEACTIVATED,
+                     S_LEARNED, S_LEAVES, S_NODES, S_PRUNED, S_SPLITS, ClassifierTables,
+                     allocate, capacities, grow)
+
+
+@dataclasses.dataclass
+class Scored:
+    """Per-record output of scoring: class code (-1 = none yet), its probability, and
+    the node id of the leaf that scored the record."""
+
+    pred: np.ndarray
+    confidence: np.ndarray
+    leaf: np.ndarray
+
+
+class TreeClassifier:
+    """An incremental Hoeffding tree over numeric and categorical features.
+
+    Parameters
+    ----------
+    feature_names
+        Names of the columns of ``X``.
+    feature_kinds
+        ``"numeric"`` or ``"category"`` per column; category values arrive as integer
+        codes (0, 1, 2, ...) stored as floats. NaN is a missing value everywhere.
+    settings
+        How the tree grows; :class:`stream.settings.TreeSettings` defaults if omitted.
+    """
+
+    def __init__(self, feature_names: list[str], feature_kinds: list[str],
+                 settings: TreeSettings | None = None) -> None:
+        if len(feature_names) != len(feature_kinds):
+            raise ConfigError("feature names and kinds must have the same length, got "
+                              f"{len(feature_names)} and {len(feature_kinds)}")
+        bad = [k for k in feature_kinds if k not in ("numeric", "category")]
+        if bad:
+            raise ConfigError(f"feature kind must be 'numeric' or 'category', got {bad[0]!r}")
+        if not feature_names:
+            raise ConfigError("a tree needs at least one feature, got none")
+        self.settings = settings or TreeSettings()
+        self.feature_names = list(feature_names)
+        self.feature_kinds = list(feature_kinds)
+        self.classes_: list[str] = []
+        self.tables_: ClassifierTables = allocate(self.settings, self.feature_kinds)
+        self._category_columns = np.array(
+            [j for j, k in enumerate(self.feature_kinds) if k == "category"], np.int64)
+
+    # ------------------------------------------------------------------ learning
+    def learn(self, X: np.ndarray, y: np.ndarray, classes: list[str]) -> Scored:
+        """Score each row of ``X`` with the current tree, then learn it.
+
+        ``y`` holds class codes indexing ``classes`` (the labels known so far; the list
+        may only grow between calls).
+        """
+        X = np.ascontiguousarray(X, dtype=np.float64)
+        y = np.ascontiguousarray(y, dtype=np.int32)
+        if X.ndim != 2 or X.shape[1] != len(self.feature_names):
+            raise ConfigError(f"X must have {len(self.feature_names)} columns, got shape "
+                              f"{X.shape}")
+        if y.shape[0] != X.shape[0]:
+            raise ConfigError(f"y must have {X.shape[0]} values, got {y.shape[0]}")
+        self._set_classes(classes)
+        if y.size and (y.min() < 0 or y.max() >= len(self.classes_)):
+            raise ConfigError(f"class codes must be in 0..{len(self.classes_) - 1}, got "
+                              f"{int(y.min()) if y.min() < 0 else int(y.max())}")
+        self._fit_categories(X)
+        n = X.shape[0]
+        scored = Scored(np.empty(n, np.int32), np.empty(n), np.empty(n, np.int32))
+        rank = self._rank()
+        done = 0
+        while True:
+            done = learn_batch(self.tables_, X, y, done, rank, scored.pred,
+                               scored.confidence, scored.leaf)
+            if done >= n:
+                return scored
+            self._make_room()
+
+    def predict(self, X: np.ndarray) -> Scored:
+        """Score rows of ``X`` without learning."""
+        X = np.ascontiguousarray(X, dtype=np.float64)
+        n = X.shape[0]
+        scored = Scored(np.empty(n, np.int32), np.empty(n), np.empty(n, np.int32))
+        predict_batch(self.tables_, X, self._rank(), scored.pred, scored.confidence,
+                      scored.leaf)
+        return scored
+
+    # ------------------------------------------------------------------ capacity
+    def _set_classes(self, classes: list[str]) -> None:
+        classes = [str(c) for c in classes]
+        if classes[:len(self.classes_)] != self.classes_:
+            raise ConfigError("class labels may only be appended, got "
+                              f"{classes!r} after {self.classes_!r}")
+        self.classes_ = classes
+        capacity = capacities(self.tables_)["classes"]
+        if len(classes) > capacity:
+            self.tables_ = grow(self.tables_, classes=max(len(classes), 2 * capacity))
+
+    def _fit_categories(self, X: np.ndarray) -> None:
+        if not self._category_columns.size or not X.shape[0]:
+            return
+        codes = X[:, self._category_columns]
+        if np.isnan(codes).all():
+            return
+        highest = int(np.nanmax(codes))
+        capacity = capacities(self.tables_)["cats"]
+        if highest >= capacity:
+            self.tables_ = grow(self.tables_, cats=max(highest + 1, 2 * capacity))
+
+    def _make_room(self) -> None:
+        t = self.tables_
+        cap = capacities(t)
+        width = max(2, cap["cats"])
+        leaves = int(t.state[S_LEAVES])
+        need_slots = min(leaves, leaf_cap(t)) + width + 1
+        self.tables_ = grow(
+            t,
+            nodes=2 * cap["nodes"] + width if cap["nodes"] - t.state[S_NODES] <= width + 1 else 0,
+            slots=max(2 * cap["slots"], need_slots) if cap["slots"] < need_slots else 0,
+            children=(2 * cap["children"] + width
+                      if cap["children"] - t.state[S_CHILD_USED] <= width else 0),
+        )
+        if not has_room(self.tables_):  # pragma: no cover - a bug, not a data condition
+            raise RuntimeError("tables did not grow enough")
+
+    def _rank(self) -> np.ndarray:
+        rank = np.zeros(capacities(self.tables_)["classes"], np.int32)
+        order = sorted(range(len(self.classes_)), key=lambda k: self.classes_[k])
+        for r, k in enumerate(order):
+            rank[k] = r
+        return rank
+
+    # ------------------------------------------------------------------ introspection
+    @property
+    def n_nodes(self) -> int:
+        return int(self.tables_.state[S_NODES])
+
+    @property
+    def n_leaves(self) -> int:
+        return int(self.tables_.state[S_LEAVES])
+
+    @property
+    def n_active_leaves(self) -> int:
+        return int(self.tables_.state[S_ACTIVE])
+
+    @property
+    def depth(self) -> int:
+        """Edges on the longest root-to-leaf path (0 for a lone root)."""
+        return int(self.tables_.node_i[:self.n_nodes, DEPTH].max())
+
+    @property
+    def records_learned(self) -> int:
+        return int(self.tables_.state[S_LEARNED])
+
+    def counters(self) -> dict:
+        """Growth counters: splits, prepruned attempts, deactivated leaves, classes seen."""
+        s = self.tables_.state
+        return {"splits": int(s[S_SPLITS]), "prepruned": int(s[S_PRUNED]),
+                "deactivated": int(s[S_DEACTIVATED]), "classes_seen": int(s[S_CLASSES_SEEN])}

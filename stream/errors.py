@@ -1,0 +1,40 @@
+"""Every exception sapwood raises on purpose, each with the exit code the CLI maps it to.
+
+Exit codes (a contract other tools rely on): 0 done, 1 bad usage or configuration,
+2 input could not be read. Messages say *where*: the source, the line or offset, the
+field and the bad value, e.g. ``line 1042, field 'supply_temp': 'abc' is not a number``.
+"""
+
+from __future__ import annotations
+
+EXIT_OK = 0
+EXIT_USAGE = 1
+EXIT_INPUT = 2
+
+
+class SapwoodError(Exception):
+    """Base class; ``exit_code`` tells the CLI how to end."""
+
+    exit_code = EXIT_USAGE
+
+
+class ConfigError(SapwoodError):
+    """A setting or option has a value sapwood cannot use."""
+
+
+class SchemaError(SapwoodError):
+    """The schema (declared or inferred) does not fit the stream."""
+
+
+class InputError(SapwoodError):
+    """A source could not be opened or read at all."""
+
+    exit_code = EXIT_INPUT
+
+
+class RecordError(InputError):
+    """One record is malformed; raised only in strict mode (otherwise quarantined)."""
+
+
+class ModelFileError(InputError):
+    """A saved model, snapshot or checkpoint is missing, corrupt or of another version."""

@@ -1,0 +1,147 @@
+"""Learner settings: one frozen dataclass, validated once, with one message template.
+
+Defaults are the published ones of the Hoeffding tree (Domingos & Hulten, KDD 2000):
+grace period 200, delta 1e-7, tie threshold 0.05. The remaining defaults follow the
+common practice of streaming tree libraries (10 Gaussian candidate thresholds, a 1 %
+minimum branch fraction, no split attempt when one class holds more than 99 %).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from typing import Any
+
+from .errors import ConfigError
+
+CRITERIA = {"info_gain": 0, "gini": 1}
+"""Split criteria by name -> kernel id. Information gain in bits (range log2 C) or Gini (range 1)."""
+
+LEAF_MODELS = {"majority": 0, "naive_bayes": 1, "adaptive": 2}
+"""Leaf predictors by name -> kernel id. ``adaptive`` uses, per leaf, whichever of the
+other two has been right more often on the records that leaf has seen."""
+
+NUMERIC_OBSERVERS = {"gaussian": 0, "histogram": 1}
+"""Numeric split observers by name -> kernel id. ``gaussian``: per-class normal estimators
+with evenly spaced candidate thresholds; ``histogram``: per-leaf quantile bins with exact
+class counts, for skewed sensors."""
+
+
+def _fail(what: str, requirement: str, value: Any) -> ConfigError:
+    return ConfigError(f"{what} must be {requirement}, got {value!r}")
+
+
+def require_int(what: str, value: Any, minimum: int) -> int:
+    """Return ``value`` as int or raise 'X must be a whole number >= m, got v'."""
+    if isinstance(value, bool) or not isinstance(value, (int,)) or value < minimum:
+        if isinstance(value, float) and value.is_integer() and value >= minimum:
+            return int(value)
+        raise _fail(what, f"a whole number >= {minimum}", value)
+    return int(value)
+
+
+def require_float(what: str, value: Any, low: float, high: float,
+                  low_open: bool = True, high_open: bool = True) -> float:
+    """Return ``value`` as float within the interval or raise with the template."""
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = math.nan
+    left = number > low if low_open else number >= low
+    right = number < high if high_open else number <= high
+    if isinstance(value, bool) or not (left and right):
+        interval = f"{'(' if low_open else '['}{low:g}, {high:g}{')' if high_open else ']'}"
+        raise _fail(what, f"a number in {interval}", value)
+    return number
+
+
+def require_choice(what: str, value: Any, choices: dict) -> str:
+    """Return ``value`` if it names an entry of ``choices``."""
+    if value not in choices:
+        raise _fail(what, "one of " + ", ".join(sorted(choices)), value)
+    return value
+
+
+@dataclasses.dataclass(frozen=True)
+class TreeSettings:
+    """How the tree grows and predicts.
+
+    Parameters
+    ----------
+    criterion
+        Split merit: ``info_gain`` or ``gini``.
+    grace_period
+        Records a leaf sees between split attempts (n_min).
+    delta
+        One minus the confidence of the Hoeffding bound.
+    tie_threshold
+        Split anyway when the bound has shrunk below this (tau).
+    leaf_model
+        ``majority``, ``naive_bayes`` or ``adaptive``.
+    numeric_observer
+        ``gaussian`` or ``histogram``.
+    candidate_thresholds
+        Evenly spaced thresholds the Gaussian observer tries between min and max.
+    histogram_bins
+        Bins per leaf and feature of the histogram observer.
+    min_branch_fraction
+        A split needs two branches each holding more than this share of the weight.
+    max_share_to_split
+        No split is attempted while one class holds more than this share of a leaf.
+    prepruning
+        Count "no split" as a candidate (the null attribute of the original paper).
+    binary_categories
+        Split categories as ``x == v`` / ``x != v`` only, never one branch per value.
+    max_depth
+        Depth at which leaves stop growing; ``None`` for no limit.
+    memory_mb
+        Budget for the statistics of active leaves; beyond it the least promising leaves
+        (records seen x error rate) are deactivated.
+    naive_bayes_after
+        Records a leaf must have seen before naive Bayes may predict there.
+    """
+
+    criterion: str = "info_gain"
+    grace_period: int = 200
+    delta: float = 1e-7
+    tie_threshold: float = 0.05
+    leaf_model: str = "adaptive"
+    numeric_observer: str = "gaussian"
+    candidate_thresholds: int = 10
+    histogram_bins: int = 32
+    min_branch_fraction: float = 0.01
+    max_share_to_split: float = 0.99
+    prepruning: bool = True
+    binary_categories: bool = False
+    max_depth: int | None = None
+    memory_mb: float = 256.0
+    naive_bayes_after: int = 0
+
+    def __post_init__(self) -> None:
+        require_choice("criterion", self.criterion, CRITERIA)
+        require_int("grace period", self.grace_period, 1)
+        require_float("delta", self.delta, 0.0, 1.0)
+        require_float("tie threshold", self.tie_threshold, 0.0, math.inf, low_open=False)
+        require_choice("leaf model", self.leaf_model, LEAF_MODELS)
+        require_choice("numeric observer", self.numeric_observer, NUMERIC_OBSERVERS)
+        require_int("candidate thresholds", self.candidate_thresholds, 1)
+        require_int("histogram bins", self.histogram_bins, 2)
+        require_float("min branch fraction", self.min_branch_fraction, 0.0, 0.5,
+                      low_open=False)
+        require_float("max share to split", self.max_share_to_split, 0.0, 1.0,
+                      high_open=False)
+        if self.max_depth is not None:
+            require_int("max depth", self.max_depth, 1)
+        require_float("memory budget (MB)", self.memory_mb, 0.0, math.inf)
+        require_int("naive Bayes threshold", self.naive_bayes_after, 0)
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "TreeSettings":
+        known = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(data) - known)
+        if unknown:
+            raise ConfigError(f"unknown setting {unknown[0]!r}; known: {', '.join(sorted(known))}")
+        return cls(**data)
