@@ -150,6 +150,26 @@ class TreeClassifier:
             rank[k] = r
         return rank
 
+    # ------------------------------------------------------------------ state
+    def state(self) -> tuple[dict, dict[str, np.ndarray]]:
+        """Everything needed to resume: JSON-able meta and the tables (no pickle)."""
+        meta = {"settings": self.settings.to_dict(), "feature_names": self.feature_names,
+                "feature_kinds": self.feature_kinds, "classes": self.classes_}
+        return meta, {name: np.asarray(a) for name, a in self.tables_._asdict().items()}
+
+    @classmethod
+    def from_state(cls, meta: dict, arrays: dict[str, np.ndarray]) -> "TreeClassifier":
+        """Rebuild a classifier saved by :meth:`state`."""
+        model = cls(meta["feature_names"], meta["feature_kinds"],
+                    TreeSettings.from_dict(meta["settings"]))
+        missing = [f for f in ClassifierTables._fields if f not in arrays]
+        if missing:
+            raise ConfigError(f"saved tree lacks table {missing[0]!r}")
+        model.tables_ = ClassifierTables(**{f: np.ascontiguousarray(arrays[f])
+                                            for f in ClassifierTables._fields})
+        model.classes_ = list(meta["classes"])
+        return model
+
     # ------------------------------------------------------------------ introspection
     @property
     def n_nodes(self) -> int:

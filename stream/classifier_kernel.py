@@ -28,10 +28,10 @@ from .observers import (category_best, category_equals_post, category_log_likeli
 from .tables import (C_BINARY_CATS, C_CANDIDATES, C_CRITERION, C_GRACE, C_LEAF_MODEL,
                      C_MAX_DEPTH, C_NB_AFTER, C_OBSERVER, C_PREPRUNE, CHILD_START, CREATED,
                      DEPTH, EQUALS, F_DELTA, F_MAX_SHARE, F_MEMORY_BYTES, F_MIN_BRANCH,
-                     F_TAU, FEATURE, FM_KIND, FM_LOCAL, FM_SEEN, KIND, LAST_ATTEMPT, LEAF,
+                     F_TAU, FEATURE, FM_KIND, FM_LOCAL, FM_SEEN, HITS, KIND, LAST_ATTEMPT, LEAF,
                      MC_CORRECT, MERIT, MULTIWAY, N_CHILDREN, NB_CORRECT, NUMERIC, PARENT,
                      S_ACTIVE, S_CATS_SEEN, S_CHILD_USED, S_CLASSES_SEEN, S_DEACTIVATED,
-                     S_FREE_TOP, S_LEARNED, S_LEAVES, S_NODES, S_PRUNED, S_SPLITS, SLOT,
+                     S_FREE_TOP, S_LEARNED, S_LEAVES, S_NODES, S_PRUNED, S_SPLITS, SCORED, SLOT,
                      THRESHOLD, WEIGHT)
 
 MAJORITY, NAIVE_BAYES, ADAPTIVE = 0, 1, 2
@@ -524,6 +524,9 @@ def learn_batch(t, X, y, start: int, rank, pred, confidence, leaf) -> int:
         leaf[i] = n
 
         k = y[i]
+        node_f[n, SCORED] += 1.0
+        if label == k:
+            node_f[n, HITS] += 1.0
         if k + 1 > state[S_CLASSES_SEEN]:
             state[S_CLASSES_SEEN] = k + 1
         note_categories(fmap, state, x)

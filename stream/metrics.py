@@ -116,9 +116,10 @@ def _classification_pass(y, p, cm, true_n, pred_n, wcm, wtrue_n, wpred_n,
         hit = 1 if t == q else 0
         # The majority predictor is scored before it sees this record's label.
         mhit = 1 if t == majority else 0
-        cm[t, q] += 1
         true_n[t] += 1
-        pred_n[q] += 1
+        if q >= 0:  # -1: the learner had no class to predict yet (counted as wrong)
+            cm[t, q] += 1
+            pred_n[q] += 1
         correct += hit
         majority_hits += mhit
         # Only true_n[t] grew, so the new majority is the old one or t.
@@ -127,18 +128,20 @@ def _classification_pass(y, p, cm, true_n, pred_n, wcm, wtrue_n, wpred_n,
         if n >= width:
             ot = ring_y[pos]
             oq = ring_p[pos]
-            wcm[ot, oq] -= 1
             wtrue_n[ot] -= 1
-            wpred_n[oq] -= 1
+            if oq >= 0:
+                wcm[ot, oq] -= 1
+                wpred_n[oq] -= 1
             if ot == oq:
                 wcorrect -= 1
             wmajority_hits -= ring_m[pos]
         ring_y[pos] = t
         ring_p[pos] = q
         ring_m[pos] = mhit
-        wcm[t, q] += 1
         wtrue_n[t] += 1
-        wpred_n[q] += 1
+        if q >= 0:
+            wcm[t, q] += 1
+            wpred_n[q] += 1
         wcorrect += hit
         wmajority_hits += mhit
         pos += 1
@@ -280,11 +283,12 @@ def _pair(y: Any, pred: Any, first_record: int) -> tuple[np.ndarray, np.ndarray]
     return y, pred
 
 
-def _check_codes(what: str, codes: np.ndarray, n_classes: int, first_record: int) -> np.ndarray:
+def _check_codes(what: str, codes: np.ndarray, n_classes: int, first_record: int,
+                 lowest: int = 0) -> np.ndarray:
     if codes.dtype.kind not in "iu":
         raise ValueError(f"{what} class codes must be integers, got dtype {codes.dtype}")
-    if codes.size and (codes.min() < 0 or codes.max() >= n_classes):
-        i = int(np.flatnonzero((codes < 0) | (codes >= n_classes))[0])
+    if codes.size and (codes.min() < lowest or codes.max() >= n_classes):
+        i = int(np.flatnonzero((codes < lowest) | (codes >= n_classes))[0])
         raise ValueError(f"record {first_record + i}: {what} class code {codes[i]} is "
                          f"outside 0..{n_classes - 1}")
     return np.ascontiguousarray(codes, dtype=np.int32)
@@ -342,7 +346,8 @@ def _check_kind(state: Mapping, kind: str) -> None:
 
 def _confusion_of(codes_y: np.ndarray, codes_p: np.ndarray, n_classes: int) -> np.ndarray:
     cm = np.zeros((n_classes, n_classes), dtype=np.int64)
-    np.add.at(cm, (codes_y.astype(np.intp), codes_p.astype(np.intp)), 1)
+    scored = codes_p >= 0  # -1: no prediction, in no column
+    np.add.at(cm, (codes_y[scored].astype(np.intp), codes_p[scored].astype(np.intp)), 1)
     return cm
 
 
@@ -422,7 +427,8 @@ class ClassificationScore:
         Parameters
         ----------
         y, pred
-            1-D integer arrays of class codes in ``0 .. n_classes - 1``, in stream order.
+            1-D integer arrays of class codes in ``0 .. n_classes - 1``, in stream order;
+            a prediction of -1 means "no class yet" and counts as wrong.
         n_classes
             Classes the learner knows now; may grow between calls.
 
@@ -438,7 +444,7 @@ class ClassificationScore:
             n_classes = int(n_classes)
         n_classes = require_int("number of classes", n_classes, 1)
         y = _check_codes("true", y, n_classes, first)
-        pred = _check_codes("predicted", pred, n_classes, first)
+        pred = _check_codes("predicted", pred, n_classes, first, lowest=-1)
         self._grow(n_classes)
         out = np.empty((_log_rows_due(self.records, y.shape[0], self.log_every),
                         len(CLASSIFICATION_ROW)))
@@ -491,7 +497,7 @@ class ClassificationScore:
             "n_classes": self.n_classes_, "records": int(c[0]),
             "majority_hits": int(c[3]),
             "fading_sum": float(self._fade[0]), "fading_count": float(self._fade[1]),
-            "confusion": self.cm_.copy(),
+            "confusion": self.cm_.copy(), "true_counts": self._true_n.copy(),
             "ring_true": self._ring_y.copy(), "ring_pred": self._ring_p.copy(),
             "ring_majority_hit": self._ring_m.copy(),
         }
@@ -512,14 +518,17 @@ class ClassificationScore:
         score._ring_p = _array(state, "ring_pred", np.int32, (w,))
         score._ring_m = _array(state, "ring_majority_hit", np.uint8, (w,))
         ry, rp = score._ring_y[:filled], score._ring_p[:filled]
-        if (n < 0 or int(score.cm_.sum()) != n or (cls._bad_codes(ry, k) or
-                                                    cls._bad_codes(rp, k))):
+        # records the learner could not yet predict (-1) are in true_counts, not in cm
+        true_n = _array(state, "true_counts", np.int64, (k,)) if "true_counts" in state \
+            else score.cm_.sum(axis=1)
+        if (n < 0 or int(true_n.sum()) != n or (true_n < score.cm_.sum(axis=1)).any()
+                or cls._bad_codes(ry, k) or cls._bad_codes(rp, k, lowest=-1)):
             raise ModelFileError(f"metrics state: confusion matrix, ring and record count "
                                  f"({n}) do not agree")
         score.window_cm_ = _confusion_of(ry, rp, k)
-        score._true_n = score.cm_.sum(axis=1)
+        score._true_n = true_n
         score._pred_n = score.cm_.sum(axis=0)
-        score._wtrue_n = score.window_cm_.sum(axis=1)
+        score._wtrue_n = np.bincount(ry, minlength=k).astype(np.int64)
         score._wpred_n = score.window_cm_.sum(axis=0)
         # argmax takes the first maximum, i.e. the lowest code, as the kernel does.
         majority = int(np.argmax(score._true_n)) if k else 0
@@ -531,8 +540,8 @@ class ClassificationScore:
         return score
 
     @staticmethod
-    def _bad_codes(codes: np.ndarray, n_classes: int) -> bool:
-        return bool(codes.size) and bool(codes.min() < 0 or codes.max() >= n_classes)
+    def _bad_codes(codes: np.ndarray, n_classes: int, lowest: int = 0) -> bool:
+        return bool(codes.size) and bool(codes.min() < lowest or codes.max() >= n_classes)
 
 
 class RegressionScore:

@@ -13,11 +13,12 @@ Nodes (capacity N; ids 0..n_nodes-1; the root is 0)
                          ``x == code`` -> child 0), FEATURE (-1 at leaves), CHILD_START,
                          N_CHILDREN, PARENT, DEPTH, CREATED (records learned at creation),
                          SLOT (row of leaf statistics, -1 when inactive or a branch)
-    node_f  f8[N, 6]     THRESHOLD (or the category code of kind 3), WEIGHT (weight that
+    node_f  f8[N, 8]     THRESHOLD (or the category code of kind 3), WEIGHT (weight that
                          reached the node; missing values follow the heaviest child),
                          LAST_ATTEMPT (leaf weight at the last split attempt), MC_CORRECT,
                          NB_CORRECT (records the majority / naive Bayes model got right),
-                         MERIT (of the chosen split)
+                         MERIT (of the chosen split), SCORED and HITS (records the leaf
+                         scored, and scored right, since it was created)
     counts  f8[N, C]     class weights: live at leaves, as at the split for branches
     child_table int64[M] child ids per branch block (-1: no branch for that code yet)
 
@@ -53,8 +54,8 @@ from .settings import CRITERIA, LEAF_MODELS, NUMERIC_OBSERVERS, TreeSettings
 KIND, FEATURE, CHILD_START, N_CHILDREN, PARENT, DEPTH, CREATED, SLOT = range(8)
 NODE_I_COLS = 8
 # node_f columns
-THRESHOLD, WEIGHT, LAST_ATTEMPT, MC_CORRECT, NB_CORRECT, MERIT = range(6)
-NODE_F_COLS = 6
+THRESHOLD, WEIGHT, LAST_ATTEMPT, MC_CORRECT, NB_CORRECT, MERIT, SCORED, HITS = range(8)
+NODE_F_COLS = 8
 # gauss last axis
 G_N, G_MEAN, G_M2, G_MIN, G_MAX, G_LLA, G_LLB = range(7)
 GAUSS_COLS = 7

@@ -1,0 +1,289 @@
+"""The ``sapwood`` command: a thin layer over the engine.
+
+Exit codes: 0 done, 1 bad usage or configuration, 2 input could not be read (see
+:mod:`stream.errors`). Messages go to stderr; stdout carries only what was asked for
+(predictions, rules, a schema).
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import time
+
+import click
+
+from connectors.sources import FORMATS
+
+from .errors import EXIT_USAGE, ConfigError, SapwoodError
+from .settings import CRITERIA, LEAF_MODELS, NUMERIC_OBSERVERS, TreeSettings
+
+KINDS = ("numeric", "category", "id", "time", "ignore")
+SAFETY_NOTE = ("Learned rules are advisory, not safety interlocks: defer to site safety "
+               "systems, local codes and licensed practice.")
+
+
+def _parse_kinds(pairs: tuple[str, ...]) -> dict[str, str]:
+    declared = {}
+    for pair in pairs:
+        field, sep, kind = pair.partition("=")
+        if not sep or not field or kind not in KINDS:
+            raise ConfigError(f"--kind takes FIELD=KIND with KIND one of {', '.join(KINDS)}, "
+                              f"got {pair!r}")
+        declared[field] = kind
+    return declared
+
+
+class _Progress:
+    """One line on stderr, rewritten at most twice a second, only on a terminal."""
+
+    def __init__(self, stream=None, clock=time.monotonic) -> None:
+        self.stream = stream or sys.stderr
+        self.clock = clock
+        self.enabled = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self.last = 0.0
+        self.shown = False
+
+    def __call__(self, facts: dict) -> None:
+        if not self.enabled or self.clock() - self.last < 0.5:
+            return
+        self.last = self.clock()
+        self.stream.write(f"\rsapwood: {facts['records']:,} records, "
+                          f"{facts['rate']:,.0f} records/s, "
+                          f"{facts['quarantined']:,} quarantined ")
+        self.stream.flush()
+        self.shown = True
+
+    def done(self) -> None:
+        if self.shown:
+            self.stream.write("\n")
+
+
+def _tree_options(function):
+    options = [
+        click.option("--criterion", type=click.Choice(sorted(CRITERIA)), default="info_gain",
+                     show_default=True, help="Split merit."),
+        click.option("--grace-period", type=int, default=200, show_default=True,
+                     help="Records a leaf sees between split attempts."),
+        click.option("--delta", type=float, default=1e-7, show_default=True,
+                     help="One minus the confidence of the Hoeffding bound."),
+        click.option("--tie-threshold", type=float, default=0.05, show_default=True,
+                     help="Split anyway once the Hoeffding bound is below this."),
+        click.option("--leaf-model", type=click.Choice(sorted(LEAF_MODELS)),
+                     default="adaptive", show_default=True,
+                     help="How leaves predict: majority class, naive Bayes, or per leaf "
+                          "whichever has been right more often."),
+        click.option("--numeric-observer", type=click.Choice(sorted(NUMERIC_OBSERVERS)),
+                     default="gaussian", show_default=True,
+                     help="How numeric features propose thresholds: per-class Gaussians, "
+                          "or quantile histograms (for skewed sensors)."),
+        click.option("--thresholds", type=int, default=10, show_default=True,
+                     help="Candidate thresholds per numeric feature (gaussian observer)."),
+        click.option("--bins", type=int, default=32, show_default=True,
+                     help="Bins per numeric feature (histogram observer)."),
+        click.option("--max-depth", type=int, default=None, help="Deepest a leaf may be."),
+        click.option("--memory-mb", type=float, default=256.0, show_default=True,
+                     help="Budget for leaf statistics; least promising leaves stop growing "
+                          "beyond it."),
+    ]
+    for option in reversed(options):
+        function = option(function)
+    return function
+
+
+def _settings(kw: dict) -> TreeSettings:
+    return TreeSettings(criterion=kw["criterion"], grace_period=kw["grace_period"],
+                        delta=kw["delta"], tie_threshold=kw["tie_threshold"],
+                        leaf_model=kw["leaf_model"], numeric_observer=kw["numeric_observer"],
+                        candidate_thresholds=kw["thresholds"], histogram_bins=kw["bins"],
+                        max_depth=kw["max_depth"], memory_mb=kw["memory_mb"])
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(package_name="sapwood", prog_name="sapwood")
+def cli() -> None:
+    """Learn a decision tree from a live stream of records and keep it current.
+
+    Each record is scored before it is learned. The tree grows a split only when the
+    Hoeffding bound says the data justify it, and its leaves can be read as IF/THEN
+    rules. Learned rules are advisory, not safety interlocks.
+    """
+
+
+@cli.command()
+@click.argument("sources", nargs=-1, required=True, metavar="SOURCE...")
+@click.option("--target", required=True, help="Field to predict.")
+@click.option("--format", "fmt", type=click.Choice(sorted(FORMATS)), default=None,
+              help="Input format (default: from each file name; sniffed on stdin).")
+@click.option("--schema", "schema_path", type=click.Path(dir_okay=False),
+              help="Schema file (JSON) declaring each field's kind; inferred otherwise.")
+@click.option("--kind", "kinds", multiple=True, metavar="FIELD=KIND",
+              help=f"Declare one field's kind ({', '.join(KINDS)}); repeatable.")
+@click.option("--summary", "summary_path", type=click.Path(dir_okay=False),
+              help="Write the run's summary here (JSON).")
+@click.option("--save", "save_path", type=click.Path(dir_okay=False),
+              help="Save the learned model here at the end.")
+@click.option("--snapshots", "snapshot_dir", type=click.Path(file_okay=False),
+              help="Directory for rule snapshots.")
+@click.option("--snapshot-every", type=int, default=None,
+              help="Records between snapshots (default 10000 with --snapshots).")
+@click.option("--keep-snapshots", type=int, default=None,
+              help="Keep only the newest this many snapshots.")
+@click.option("--metrics", "metrics_path", type=click.Path(dir_okay=False),
+              help="Write a metrics log here (JSON lines).")
+@click.option("--metrics-every", type=int, default=1000, show_default=True,
+              help="Records between metrics log rows.")
+@click.option("--window", type=int, default=1000, show_default=True,
+              help="Records in the sliding evaluation window.")
+@click.option("--quarantine", "quarantine_path", type=click.Path(dir_okay=False),
+              help="Where rejected records go (default sapwood-quarantine.jsonl, created "
+                   "only if a record is rejected).")
+@click.option("--strict", is_flag=True, help="Stop at the first bad record.")
+@click.option("--predictions", "predictions_path", type=click.Path(dir_okay=False,
+                                                                    allow_dash=True),
+              help="Write each record's prediction here ('-' for stdout; .csv for CSV).")
+@click.option("--batch-rows", type=int, default=65536, show_default=True,
+              help="Records read per batch (memory vs. call overhead; results are equal).")
+@click.option("--quiet", "-q", is_flag=True, help="No closing report on stderr.")
+@_tree_options
+def learn(sources, target, fmt, schema_path, kinds, summary_path, save_path, snapshot_dir,
+          snapshot_every, keep_snapshots, metrics_path, metrics_every, window,
+          quarantine_path, strict, predictions_path, batch_rows, quiet, **tree) -> None:
+    """Learn SOURCE... (files in order, or - for stdin) to the end, scoring each record first.
+
+    \b
+    Example:
+      sapwood learn plant.csv --target fault --summary run.json --snapshots rules/
+    """
+    from .engine import LearnJob, LearnRun
+
+    job = LearnJob(
+        sources=list(sources), target=target, fmt=fmt, schema_path=schema_path,
+        declared=_parse_kinds(kinds), settings=_settings(tree), summary_path=summary_path,
+        save_path=save_path, snapshot_dir=snapshot_dir,
+        snapshot_every=snapshot_every if snapshot_every is not None
+        else (10000 if snapshot_dir else 0),
+        snapshot_keep=keep_snapshots, metrics_path=metrics_path, metrics_every=metrics_every,
+        quarantine_path=quarantine_path, strict=strict, predictions_path=predictions_path,
+        window=window, batch_rows=batch_rows)
+    progress = _Progress()
+    summary = LearnRun(job, progress=progress).run()
+    progress.done()
+    if not quiet:
+        click.echo(_closing_report(summary), err=True)
+
+
+def _percent(value) -> str:
+    return "n/a" if value is None else f"{100 * value:.1f}%"
+
+
+def _closing_report(s: dict) -> str:
+    lines = [f"sapwood: learned {s['learned']:,} of {s['records']:,} records in "
+             f"{s['seconds']:.2f} s ({(s['records_per_second'] or 0):,.0f} records/s)"]
+    lines.append(f"  accuracy {_percent(s['accuracy'])}, kappa "
+                 f"{'n/a' if s['kappa'] is None else format(s['kappa'], '.3f')}, "
+                 f"last {1000 if s.get('window_accuracy') is not None else 0:,} records "
+                 f"{_percent(s.get('window_accuracy'))}; {s['leaves']} rules, depth {s['depth']}")
+    if s["quarantined"]:
+        lines.append(f"  {s['quarantined']:,} records quarantined in "
+                     f"{s['outputs']['quarantine']}")
+    for name, path in s["outputs"].items():
+        if path and name != "quarantine":
+            lines.append(f"  {name}: {path}")
+    return "\n".join(lines)
+
+
+@cli.command()
+@click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False))
+@click.argument("sources", nargs=-1, required=True, metavar="SOURCE...")
+@click.option("--format", "fmt", type=click.Choice(sorted(FORMATS)), default=None,
+              help="Input format (default: from each file name; sniffed on stdin).")
+@click.option("--predictions", "predictions_path", default="-", show_default=True,
+              type=click.Path(dir_okay=False, allow_dash=True),
+              help="Where predictions go ('-' for stdout; .csv for CSV).")
+@click.option("--quarantine", "quarantine_path", type=click.Path(dir_okay=False),
+              help="Where rejected records go.")
+def score(model_path, sources, fmt, predictions_path, quarantine_path) -> None:
+    """Predict SOURCE... with a saved MODEL, without learning."""
+    from .scoring import score_sources
+
+    report = score_sources(model_path, list(sources), fmt, predictions_path, quarantine_path)
+    click.echo(report, err=True)
+
+
+@cli.command()
+@click.argument("path", metavar="MODEL|SNAPSHOT")
+@click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
+              show_default=True, help="Aligned text for people, or JSON.")
+@click.option("--top", type=int, default=None,
+              help="Only the this many rules that cover the most records.")
+def rules(path, fmt, top) -> None:
+    """Print the rules of a saved MODEL, a snapshot file, or the newest snapshot of a
+    snapshot directory."""
+    from .rule_sources import load_rules
+    from .rules import sort_rules
+
+    header, rule_list = load_rules(path)
+    if top is not None:
+        if top < 1:
+            raise ConfigError(f"--top must be a whole number >= 1, got {top}")
+        kept = sorted(rule_list, key=lambda r: -r.coverage)[:top]
+        rule_list = sort_rules(kept)
+        header = {**header, "shown": len(rule_list)}
+    if fmt == "json":
+        from .rules import rules_payload
+
+        click.echo(json.dumps(rules_payload(rule_list, header), indent=2))
+    else:
+        from .rules import render_text
+
+        click.echo(render_text(rule_list, header), nl=False)
+
+
+@cli.command()
+@click.argument("sources", nargs=-1, required=True, metavar="SOURCE...")
+@click.option("--target", required=True, help="Field to predict.")
+@click.option("--format", "fmt", type=click.Choice(sorted(FORMATS)), default=None)
+@click.option("--kind", "kinds", multiple=True, metavar="FIELD=KIND",
+              help="Declare one field's kind; repeatable.")
+def schema(sources, target, fmt, kinds) -> None:
+    """Print the schema sapwood infers from the first records of SOURCE..., as JSON to
+    edit and pass back with --schema."""
+    from connectors.sources import open_sources
+
+    from .schema import infer_schema
+
+    source = open_sources(list(sources), fmt)
+    try:
+        for batch in source.batches():
+            inferred = infer_schema(batch.frame, target, None, _parse_kinds(kinds))
+            click.echo(json.dumps(inferred.to_dict(), indent=2))
+            return
+    finally:
+        source.close()
+    raise SapwoodError("no records to infer a schema from")
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Entry point: run the command, map exceptions to exit codes."""
+    try:
+        code = cli.main(args=argv, prog_name="sapwood", standalone_mode=False)
+    except click.exceptions.Abort:
+        click.echo("sapwood: interrupted", err=True)
+        sys.exit(130)
+    except click.ClickException as exc:
+        exc.show()
+        sys.exit(EXIT_USAGE)
+    except SapwoodError as exc:
+        click.echo(f"sapwood: {exc}", err=True)
+        sys.exit(exc.exit_code)
+    except KeyboardInterrupt:
+        click.echo("sapwood: interrupted", err=True)
+        sys.exit(130)
+    except BrokenPipeError:
+        sys.exit(0)  # the reader of our output went away: nothing left to do
+    sys.exit(code if isinstance(code, int) else 0)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()
