@@ -55,12 +55,16 @@ class RawBatch:
         int64 array, the 1-based physical line of each row of ``frame``.
     rejects
         Records of this stretch that could not be split into fields.
+    position
+        Where the source stands just after this batch (JSON-able, source-specific), for
+        checkpoints; None for sources that cannot resume.
     """
 
     frame: pd.DataFrame
     origin: str
     lines: np.ndarray
     rejects: list[Reject] = dataclasses.field(default_factory=list)
+    position: dict | None = None
 
     def __len__(self) -> int:
         return len(self.frame)
@@ -78,4 +82,23 @@ class Source(Protocol):
 
     def close(self) -> None:
         """Release files and connections; safe to call twice."""
+        ...
+
+
+@runtime_checkable
+class ResumableSource(Source, Protocol):
+    """A source a checkpoint can return to.
+
+    The engine keeps ``batch.position`` of the last batch it fully learned; it writes a
+    checkpoint holding that position and then calls :meth:`commit` with it, so a broker
+    source acknowledges only what a durable checkpoint covers. After a restart the engine
+    calls :meth:`seek` with the checkpoint's position before iterating.
+    """
+
+    def seek(self, position: dict) -> None:
+        """Continue just after ``position`` (before :meth:`batches` is called)."""
+        ...
+
+    def commit(self, position: dict) -> None:
+        """Everything up to ``position`` is in a durable checkpoint."""
         ...
