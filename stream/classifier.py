@@ -16,12 +16,32 @@ import dataclasses
 
 import numpy as np
 
-from .classifier_kernel import has_room, leaf_cap, learn_batch, predict_batch
+from .classifier_kernel import (has_room, leaf_cap, learn_batch, predict_batch, tree_shape,
+                                worst_case)
 from .errors import ConfigError
 from .settings import TreeSettings
-from .tables import (DEPTH, S_ACTIVE, S_CHILD_USED, S_CLASSES_SEEN, S_DEACTIVATED,
-                     S_LEARNED, S_LEAVES, S_NODES, S_PRUNED, S_SPLITS, ClassifierTables,
-                     allocate, capacities, grow)
+from .tables import (CHILD_START, KIND, LEAF, N_CHILDREN, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER,
+                     EV_RECORD, EVENT_NAMES, S_ACTIVE, S_ALARMS, S_ALTS,
+                     S_CHILD_USED, S_CLASSES_SEEN, S_DEACTIVATED, S_DROPS, S_EVENTS,
+                     S_FREE_NODES, S_LEARNED, S_LEAVES, S_NODES, S_PRUNED, S_ROOT, S_SPLITS,
+                     S_STARTS, S_SWAPS, ClassifierTables, allocate, capacities, grow)
+
+
+@dataclasses.dataclass(frozen=True)
+class DriftEvent:
+    """Something a drift detector did: ``kind`` is alarm, start (an alternate subtree
+    began growing beside ``node``), swap (the alternate ``other`` replaced ``node``'s
+    subtree) or drop (the alternate ``other`` was given up). ``record`` counts the
+    records learned before the event; ``before``/``after`` are error rates (alarm: the
+    node's rate before, and the detector's recent rate; swap/drop: the branch's and the
+    alternate's)."""
+
+    kind: str
+    node: int
+    record: int
+    other: int
+    before: float
+    after: float
 
 
 @dataclasses.dataclass
@@ -62,6 +82,7 @@ class TreeClassifier:
         self.feature_names = list(feature_names)
         self.feature_kinds = list(feature_kinds)
         self.classes_: list[str] = []
+        self.events_: list[DriftEvent] = []
         self.tables_: ClassifierTables = allocate(self.settings, self.feature_kinds)
         self._category_columns = np.array(
             [j for j, k in enumerate(self.feature_kinds) if k == "category"], np.int64)
@@ -92,9 +113,27 @@ class TreeClassifier:
         while True:
             done = learn_batch(self.tables_, X, y, done, rank, scored.pred,
                                scored.confidence, scored.leaf)
+            self._collect_events()
             if done >= n:
                 return scored
-            self._make_room()
+            if not has_room(self.tables_):
+                self._make_room()
+
+    def take_events(self) -> list[DriftEvent]:
+        """Drift events since the last call, oldest first. Node ids in them stay valid
+        (their paths can be read) until the next :meth:`learn`."""
+        events, self.events_ = self.events_, []
+        return events
+
+    def _collect_events(self) -> None:
+        t = self.tables_
+        count = int(t.state[S_EVENTS])
+        for e in range(count):
+            self.events_.append(DriftEvent(
+                EVENT_NAMES[int(t.events_i[e, EV_KIND])], int(t.events_i[e, EV_NODE]),
+                int(t.events_i[e, EV_RECORD]), int(t.events_i[e, EV_OTHER]),
+                float(t.events_f[e, EV_BEFORE]), float(t.events_f[e, EV_AFTER])))
+        t.state[S_EVENTS] = 0
 
     def predict(self, X: np.ndarray) -> Scored:
         """Score rows of ``X`` without learning."""
@@ -128,17 +167,20 @@ class TreeClassifier:
             self.tables_ = grow(self.tables_, cats=max(highest + 1, 2 * capacity))
 
     def _make_room(self) -> None:
+        """Enlarge whatever table :func:`has_room` found short (doubling, at least)."""
         t = self.tables_
         cap = capacities(t)
-        width = max(2, cap["cats"])
-        leaves = int(t.state[S_LEAVES])
-        need_slots = min(leaves, leaf_cap(t)) + width + 1
+        nodes, events, children, _ = (int(v) for v in worst_case(t))
+        nodes_free = cap["nodes"] - int(t.state[S_NODES]) + int(t.state[S_FREE_NODES])
+        need_nodes = nodes_free <= nodes or \
+            t.events_i.shape[0] - int(t.state[S_EVENTS]) <= events
+        need_slots = min(int(t.state[S_LEAVES]), leaf_cap(t)) + nodes
         self.tables_ = grow(
             t,
-            nodes=2 * cap["nodes"] + width if cap["nodes"] - t.state[S_NODES] <= width + 1 else 0,
+            nodes=2 * cap["nodes"] + nodes + events if need_nodes else 0,
             slots=max(2 * cap["slots"], need_slots) if cap["slots"] < need_slots else 0,
-            children=(2 * cap["children"] + width
-                      if cap["children"] - t.state[S_CHILD_USED] <= width else 0),
+            children=(2 * cap["children"] + children
+                      if cap["children"] - t.state[S_CHILD_USED] <= children else 0),
         )
         if not has_room(self.tables_):  # pragma: no cover - a bug, not a data condition
             raise RuntimeError("tables did not grow enough")
@@ -172,21 +214,42 @@ class TreeClassifier:
 
     # ------------------------------------------------------------------ introspection
     @property
+    def root(self) -> int:
+        """Node id of the main tree's root."""
+        return int(self.tables_.state[S_ROOT])
+
+    def main_nodes(self) -> np.ndarray:
+        """Ids of the main tree's nodes, parents before children."""
+        t = self.tables_
+        out, stack = [], [self.root]
+        while stack:
+            n = stack.pop()
+            out.append(n)
+            if t.node_i[n, KIND] != LEAF:
+                start, count = t.node_i[n, CHILD_START], t.node_i[n, N_CHILDREN]
+                stack.extend(int(c) for c in t.child_table[start:start + count][::-1]
+                             if c >= 0)
+        return np.array(out, np.int64)
+
+    @property
     def n_nodes(self) -> int:
-        return int(self.tables_.state[S_NODES])
+        """Nodes of the main tree."""
+        return int(tree_shape(self.tables_)[0])
 
     @property
     def n_leaves(self) -> int:
-        return int(self.tables_.state[S_LEAVES])
+        """Leaves of the main tree."""
+        return int(tree_shape(self.tables_)[1])
 
     @property
     def n_active_leaves(self) -> int:
+        """Leaves holding statistics (alternate subtrees' included)."""
         return int(self.tables_.state[S_ACTIVE])
 
     @property
     def depth(self) -> int:
-        """Edges on the longest root-to-leaf path (0 for a lone root)."""
-        return int(self.tables_.node_i[:self.n_nodes, DEPTH].max())
+        """Edges on the longest root-to-leaf path of the main tree (0 for a lone root)."""
+        return int(tree_shape(self.tables_)[2])
 
     @property
     def records_learned(self) -> int:
@@ -196,4 +259,7 @@ class TreeClassifier:
         """Growth counters: splits, prepruned attempts, deactivated leaves, classes seen."""
         s = self.tables_.state
         return {"splits": int(s[S_SPLITS]), "prepruned": int(s[S_PRUNED]),
-                "deactivated": int(s[S_DEACTIVATED]), "classes_seen": int(s[S_CLASSES_SEEN])}
+                "deactivated": int(s[S_DEACTIVATED]), "classes_seen": int(s[S_CLASSES_SEEN]),
+                "drift_alarms": int(s[S_ALARMS]), "alternates_started": int(s[S_STARTS]),
+                "alternates_swapped": int(s[S_SWAPS]), "alternates_dropped": int(s[S_DROPS]),
+                "alternates_growing": int(s[S_ALTS])}

@@ -16,7 +16,7 @@ import click
 from connectors.sources import FORMATS
 
 from .errors import EXIT_USAGE, ConfigError, SapwoodError
-from .settings import CRITERIA, LEAF_MODELS, NUMERIC_OBSERVERS, TreeSettings
+from .settings import CRITERIA, DETECTORS, LEAF_MODELS, NUMERIC_OBSERVERS, TreeSettings
 
 KINDS = ("numeric", "category", "id", "time", "ignore")
 SAFETY_NOTE = ("Learned rules are advisory, not safety interlocks: defer to site safety "
@@ -85,6 +85,19 @@ def _tree_options(function):
         click.option("--memory-mb", type=float, default=256.0, show_default=True,
                      help="Budget for leaf statistics; least promising leaves stop growing "
                           "beyond it."),
+        click.option("--drift", "detector", type=click.Choice(sorted(DETECTORS)),
+                     default="adwin", show_default=True,
+                     help="Detector watching every node's error; on an alarm an alternate "
+                          "subtree grows beside the node. 'off' for a plain Hoeffding tree."),
+        click.option("--drift-delta", type=float, default=0.002, show_default=True,
+                     help="ADWIN's confidence: smaller means fewer, later alarms."),
+        click.option("--drift-threshold", type=float, default=50.0, show_default=True,
+                     help="Page-Hinkley's alarm threshold (summed error)."),
+        click.option("--swap-after", type=int, default=300, show_default=True,
+                     help="Records both a node and its alternate must have scored before "
+                          "they are compared."),
+        click.option("--swap-significance", type=float, default=0.05, show_default=True,
+                     help="Significance of the test that swaps in or drops an alternate."),
     ]
     for option in reversed(options):
         function = option(function)
@@ -96,7 +109,11 @@ def _settings(kw: dict) -> TreeSettings:
                         delta=kw["delta"], tie_threshold=kw["tie_threshold"],
                         leaf_model=kw["leaf_model"], numeric_observer=kw["numeric_observer"],
                         candidate_thresholds=kw["thresholds"], histogram_bins=kw["bins"],
-                        max_depth=kw["max_depth"], memory_mb=kw["memory_mb"])
+                        max_depth=kw["max_depth"], memory_mb=kw["memory_mb"],
+                        detector=kw["detector"], adwin_delta=kw["drift_delta"],
+                        page_hinkley_threshold=kw["drift_threshold"],
+                        swap_after=kw["swap_after"],
+                        swap_significance=kw["swap_significance"])
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -142,13 +159,17 @@ def cli() -> None:
 @click.option("--predictions", "predictions_path", type=click.Path(dir_okay=False,
                                                                     allow_dash=True),
               help="Write each record's prediction here ('-' for stdout; .csv for CSV).")
+@click.option("--events", "events_path", type=click.Path(dir_okay=False),
+              help="Write drift events here (JSON lines: alarms, alternates started, "
+                   "swapped in, dropped; with record, time and where in the tree).")
 @click.option("--batch-rows", type=int, default=65536, show_default=True,
               help="Records read per batch (memory vs. call overhead; results are equal).")
 @click.option("--quiet", "-q", is_flag=True, help="No closing report on stderr.")
 @_tree_options
 def learn(sources, target, fmt, schema_path, kinds, summary_path, save_path, snapshot_dir,
           snapshot_every, keep_snapshots, metrics_path, metrics_every, window,
-          quarantine_path, strict, predictions_path, batch_rows, quiet, **tree) -> None:
+          quarantine_path, strict, predictions_path, events_path, batch_rows, quiet,
+          **tree) -> None:
     """Learn SOURCE... (files in order, or - for stdin) to the end, scoring each record first.
 
     \b
@@ -165,7 +186,7 @@ def learn(sources, target, fmt, schema_path, kinds, summary_path, save_path, sna
         else (10000 if snapshot_dir else 0),
         snapshot_keep=keep_snapshots, metrics_path=metrics_path, metrics_every=metrics_every,
         quarantine_path=quarantine_path, strict=strict, predictions_path=predictions_path,
-        window=window, batch_rows=batch_rows)
+        events_path=events_path, window=window, batch_rows=batch_rows)
     progress = _Progress()
     summary = LearnRun(job, progress=progress).run()
     progress.done()
@@ -184,6 +205,9 @@ def _closing_report(s: dict) -> str:
                  f"{'n/a' if s['kappa'] is None else format(s['kappa'], '.3f')}, "
                  f"last {1000 if s.get('window_accuracy') is not None else 0:,} records "
                  f"{_percent(s.get('window_accuracy'))}; {s['leaves']} rules, depth {s['depth']}")
+    if s.get("drift_alarms"):
+        lines.append(f"  drift: {s['drift_alarms']:,} alarms, {s['alternates_started']:,} "
+                     f"alternate subtrees started, {s['swaps']:,} swapped in")
     if s["quarantined"]:
         lines.append(f"  {s['quarantined']:,} records quarantined in "
                      f"{s['outputs']['quarantine']}")

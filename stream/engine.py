@@ -27,7 +27,8 @@ from .classifier import TreeClassifier
 from .encoding import EncodedBatch, Encoder
 from .errors import ConfigError, RecordError
 from .metrics import ClassificationScore
-from .rules import extract_rules, render_text, rule_id, rules_payload
+from .rules import (conditions_text, extract_rules, node_conditions, render_text, rule_id,
+                    rules_payload)
 from .saved_model import save_model
 from .schema import Schema, infer_schema, load_schema
 from .settings import TreeSettings, require_int
@@ -61,6 +62,7 @@ class LearnJob:
     quarantine_path: str | None = None
     strict: bool = False
     predictions_path: str | None = None
+    events_path: str | None = None
     window: int = 1000
     fading: float = 0.999
     batch_rows: int = 65536
@@ -168,6 +170,9 @@ class LearnRun:
             if job.metrics_path else None
         self.predictions = _PredictionSink(job.predictions_path, self.stdout) \
             if job.predictions_path else None
+        self.events_out = open(job.events_path, "w", encoding="utf-8") \
+            if job.events_path else None
+        self.recent_events: list[dict] = []
         self.records = 0
         self.last_time: float | None = None
         self.started = 0.0
@@ -211,6 +216,8 @@ class LearnRun:
                 self.metrics_out.close()
             if self.predictions is not None:
                 self.predictions.close()
+            if self.events_out is not None:
+                self.events_out.close()
         self.finished = self.clock()
         if self.snapshots is not None and self.model is not None:
             last = self.snapshots.entries()
@@ -231,16 +238,15 @@ class LearnRun:
         before = self.quarantine.count
         self.quarantine.write(batch.rejects)
         self.records += len(batch) + self.quarantine.count - before
-        if batch.times is not None and len(batch.times):
-            finite = batch.times[np.isfinite(batch.times)]
-            if finite.size:
-                self.last_time = float(finite[-1])
         start = 0
         n = len(batch)
         while start < n:
             stop = min(n, start + self._until_boundary())
             part = slice(start, stop)
+            learned_before = self.model.records_learned
             scored = self.model.learn(batch.X[part], batch.y[part], self.encoder.classes)
+            self._note_time(batch.times, stop - 1)
+            self._write_events(batch, start - learned_before)
             rows = self.score.update(batch.y[part], scored.pred, len(self.encoder.classes))
             if self.predictions is not None:
                 self.predictions.write(_slice_batch(batch, part), self.encoder.classes,
@@ -250,6 +256,37 @@ class LearnRun:
             if job.snapshot_every and self.model.records_learned % job.snapshot_every == 0:
                 self._snapshot()
             start = stop
+
+    def _note_time(self, times: np.ndarray | None, index: int) -> None:
+        """Remember the latest record time seen (the data's own clock), if any."""
+        if times is not None and index >= 0 and np.isfinite(times[index]):
+            self.last_time = float(times[index])
+
+    def _write_events(self, batch: EncodedBatch, offset: int) -> None:
+        """Drift events of the last learn call: to the events file and the next snapshot.
+        ``offset`` turns a record count into an index of ``batch``."""
+        for event in self.model.take_events():
+            index = event.record + offset
+            when = None
+            if batch.times is not None and 0 <= index < len(batch.times) \
+                    and np.isfinite(batch.times[index]):
+                when = _iso(float(batch.times[index]))
+            conditions = node_conditions(self.model, event.node, self.encoder.categories)
+            row = {
+                "record": event.record + 1, "time": when or _iso(self.wall()),
+                "time_source": "data" if when else "clock", "kind": event.kind,
+                "node": event.node,
+                "alternate": event.other if event.other >= 0 else None,
+                "detector": self.job.settings.detector,
+                "error_before": round(event.before, 6), "error_after": round(event.after, 6),
+                "where": conditions_text(conditions),
+                "path": [c.to_dict() for c in conditions],
+            }
+            self.recent_events.append(row)
+            if self.events_out is not None:
+                self.events_out.write(json.dumps(row) + "\n")
+        if self.events_out is not None:
+            self.events_out.flush()
 
     def _until_boundary(self) -> int:
         learned = self.model.records_learned
@@ -290,6 +327,8 @@ class LearnRun:
         payload = rules_payload(rules, {k: v for k, v in header.items() if k != "records"})
         payload["metrics"] = result
         payload["tree"] = self._tree_facts()
+        payload["events"] = self.recent_events
+        self.recent_events = []
         payload["headline"] = {
             "accuracy": result["accuracy"], "kappa": result["kappa"],
             "window_accuracy": result["window_accuracy"], "rules": len(rules),
@@ -321,6 +360,7 @@ class LearnRun:
         labels = self.encoder.classes if self.encoder else []
         result = self.score.result(labels)
         m = self.model
+        drift = m.counters() if m else {}
         summary = {
             "records": self.records,
             "learned": m.records_learned if m else 0,
@@ -332,7 +372,11 @@ class LearnRun:
             "window_accuracy": result["window_accuracy"],
             "fading_accuracy": result["fading_accuracy"],
             "leaves": m.n_leaves if m else 0, "depth": m.depth if m else 0,
-            "drift_alarms": 0,
+            "drift_alarms": drift.get("drift_alarms", 0),
+            "swaps": drift.get("alternates_swapped", 0),
+            "alternates_started": drift.get("alternates_started", 0),
+            "alternates_dropped": drift.get("alternates_dropped", 0),
+            "detector": self.job.settings.detector,
             "seconds": round(seconds, 6),
             "records_per_second": round(self.records / seconds, 1) if seconds > 0 else None,
             "startup_seconds": round(self.startup_seconds, 3),
@@ -346,6 +390,7 @@ class LearnRun:
                 "quarantine": self.quarantine.path if self.quarantine.count else None,
                 "snapshots": self.job.snapshot_dir, "metrics": self.job.metrics_path,
                 "model": self.job.save_path, "predictions": self.job.predictions_path,
+                "events": self.job.events_path,
             },
         }
         return summary

@@ -74,6 +74,35 @@ def gaussian_log_density(gauss: np.ndarray, s: int, j: int, k: int, v: float) ->
 
 
 @njit
+def gaussian_fallback_density(gauss: np.ndarray, s: int, j: int, k: int, v: float,
+                              n_classes: int) -> float:
+    """log density of ``v`` for a class without spread on feature ``j``: its own mean
+    (the leaf's when it has no value) with its squared deviations shrunk towards the
+    leaf's pooled variance by one pseudo-observation; 0 (no evidence) when the leaf has
+    no spread either."""
+    total = 0.0
+    weighted = 0.0
+    for c in range(n_classes):
+        total += gauss[s, j, c, G_N]
+        weighted += gauss[s, j, c, G_N] * gauss[s, j, c, G_MEAN]
+    if total < 2.0:
+        return 0.0
+    pooled_mean = weighted / total
+    m2 = 0.0
+    for c in range(n_classes):
+        d = gauss[s, j, c, G_MEAN] - pooled_mean
+        m2 += gauss[s, j, c, G_M2] + gauss[s, j, c, G_N] * d * d
+    pooled = m2 / (total - 1.0)
+    if pooled <= 0.0:
+        return 0.0
+    n = gauss[s, j, k, G_N]
+    mean = gauss[s, j, k, G_MEAN] if n > 0.0 else pooled_mean
+    var = (gauss[s, j, k, G_M2] + pooled) / max(n, 1.0)
+    d = v - mean
+    return -d * d / (2.0 * var) - _HALF_LOG_TAU - 0.5 * math.log(var)
+
+
+@njit
 def gaussian_post(gauss: np.ndarray, s: int, j: int, threshold: float,
                   post: np.ndarray) -> None:
     """Estimated class weights left (``x <= threshold``) and right, into post[0], post[1]."""
@@ -223,7 +252,8 @@ def category_log_likelihood(cats: np.ndarray, s: int, j: int, k: int, code: int,
                             n_codes: int) -> float:
     """log P(code | class k), Laplace-smoothed over the ``n_codes`` codes seen so far."""
     count = cats[s, j, k, 1 + code] if code + 1 < cats.shape[3] else 0.0
-    return math.log((count + 1.0) / (cats[s, j, k, 0] + n_codes))
+    # the code being scored counts among the possible codes even before it was learned
+    return math.log((count + 1.0) / (cats[s, j, k, 0] + max(n_codes, code + 1)))
 
 
 @njit

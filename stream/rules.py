@@ -27,9 +27,9 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .tables import (CHILD_START, CREATED, DEPTH, EQUALS, FEATURE, HITS, KIND, LEAF,
-                     MC_CORRECT, MULTIWAY, N_CHILDREN, NB_CORRECT, NUMERIC, PARENT, SCORED,
-                     SLOT, THRESHOLD, WEIGHT)
+from .tables import (ALT, BRANCH, CHILD_START, CREATED, DEPTH, EQUALS, FEATURE, HITS, KIND,
+                     LEAF, MC_CORRECT, MULTIWAY, N_CHILDREN, NB_CORRECT, NUMERIC, PARENT,
+                     SCORED, SLOT, SWAPPED, THRESHOLD, WEIGHT)
 
 LEAF_MODEL_NAMES = {0: "majority", 1: "naive_bayes", 2: "adaptive"}
 
@@ -82,6 +82,8 @@ class Rule:
     created_at: int
     leaf_model: str
     active: bool
+    drift: str = "stable"
+    replaced_at: int | None = None
 
     @property
     def accuracy(self) -> float | None:
@@ -95,7 +97,8 @@ class Rule:
                 "class_counts": {k: _round(v, 3) for k, v in self.class_counts.items()},
                 "scored": self.scored, "hits": self.hits, "accuracy": _round(self.accuracy),
                 "depth": self.depth, "created_at": self.created_at,
-                "leaf_model": self.leaf_model, "active": self.active}
+                "leaf_model": self.leaf_model, "active": self.active, "drift": self.drift,
+                "replaced_at": self.replaced_at}
 
     @classmethod
     def from_dict(cls, data: dict) -> "Rule":
@@ -105,7 +108,8 @@ class Rule:
                    coverage=data["coverage"], records=data["records"],
                    class_counts=dict(data["class_counts"]), scored=data["scored"],
                    hits=data["hits"], depth=data["depth"], created_at=data["created_at"],
-                   leaf_model=data["leaf_model"], active=data["active"])
+                   leaf_model=data["leaf_model"], active=data["active"],
+                   drift=data.get("drift", "stable"), replaced_at=data.get("replaced_at"))
 
 
 def _round(value: float | None, digits: int = 6) -> float | None:
@@ -144,7 +148,7 @@ def _steps(model, leaf: int, categories: dict[str, list[str]]) -> list[tuple]:
         labels = categories.get(name, [])
         start, count = node_i[parent, CHILD_START], node_i[parent, N_CHILDREN]
         block = [int(c) for c in table[start:start + count]]
-        position = block.index(child)
+        position = int(node_i[child, BRANCH])
         missing = _heaviest(node_i, node_f, table, parent) == child
         kind = node_i[parent, KIND]
         if kind == NUMERIC:
@@ -208,15 +212,29 @@ def merge_conditions(steps: Sequence[tuple], names: Sequence[str]) -> tuple[Cond
     return tuple(out)
 
 
+def node_conditions(model, node: int,
+                    categories: dict[str, list[str]] | None = None) -> tuple[Condition, ...]:
+    """The merged conditions a record meets on its way to ``node`` (any live node, or one
+    that died since the last :meth:`TreeClassifier.learn`; for an alternate subtree's
+    root, the conditions of the node it grows beside)."""
+    return merge_conditions(_steps(model, node, categories or {}), model.feature_names)
+
+
+def conditions_text(conditions: Sequence[Condition]) -> str:
+    """Conditions on one line, ``AND``-joined; ``(everything)`` when there are none."""
+    if not conditions:
+        return "(everything)"
+    return " AND ".join(format_condition(group) for group in _grouped(conditions))
+
+
 def extract_rules(model, categories: dict[str, list[str]] | None = None) -> list[Rule]:
     """One :class:`Rule` per leaf, sorted by predicted class, then coverage (largest
     first), then id."""
     categories = categories or {}
     t = model.tables_
-    n_nodes = model.n_nodes
     node_i, node_f = t.node_i, t.node_f
     classes = model.classes_
-    leaves = [n for n in range(n_nodes) if node_i[n, KIND] == LEAF]
+    leaves = [int(n) for n in model.main_nodes() if node_i[n, KIND] == LEAF]
     totals = {n: float(t.counts[n, :len(classes)].sum()) for n in leaves}
     grand = sum(totals.values())
     leaf_model = model.settings.leaf_model
@@ -237,6 +255,7 @@ def extract_rules(model, categories: dict[str, list[str]] | None = None) -> list
         elif active and leaf_model == "adaptive" and \
                 node_f[n, NB_CORRECT] >= node_f[n, MC_CORRECT] and total > 0:
             model_name = "naive_bayes"
+        drift, replaced_at = _drift_state(node_i, n, model.root)
         rules.append(Rule(
             id=rule_id(n),
             conditions=merge_conditions(_steps(model, n, categories), model.feature_names),
@@ -245,8 +264,27 @@ def extract_rules(model, categories: dict[str, list[str]] | None = None) -> list
             class_counts={classes[k]: float(counts[k]) for k in range(len(classes))},
             scored=int(node_f[n, SCORED]), hits=int(node_f[n, HITS]),
             depth=int(node_i[n, DEPTH]), created_at=int(node_i[n, CREATED]),
-            leaf_model=model_name, active=active))
+            leaf_model=model_name, active=active, drift=drift, replaced_at=replaced_at))
     return sort_rules(rules)
+
+
+def _drift_state(node_i: np.ndarray, leaf: int, root: int) -> tuple[str, int | None]:
+    """``watching`` when an alternate grows beside the leaf or a node above it, else
+    ``replaced`` when the leaf lies in a subtree swapped in (at the latest such record),
+    else ``stable``."""
+    watching = False
+    replaced = None
+    n = leaf
+    while n >= 0:
+        watching = watching or node_i[n, ALT] >= 0
+        if node_i[n, SWAPPED] >= 0:
+            replaced = max(replaced or 0, int(node_i[n, SWAPPED]))
+        if n == root:
+            break
+        n = int(node_i[n, PARENT])
+    if watching:
+        return "watching", replaced
+    return ("replaced", replaced) if replaced is not None else ("stable", None)
 
 
 def sort_rules(rules: list[Rule]) -> list[Rule]:
@@ -361,6 +399,10 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
             extra.append("naive Bayes refines within the rule")
         if not r.active:
             extra.append("not growing")
+        if r.drift == "watching":
+            extra.append("drift: alternate growing")
+        elif r.drift == "replaced":
+            extra.append(f"drift: regrown at record {_count(r.replaced_at)}")
         if extra:
             lines.append(f"{pad}     " + "; ".join(extra))
         lines.append("")

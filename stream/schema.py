@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .encoding import factorize_labels, missing_mask, parse_numbers, parse_times
+from .encoding import missing_mask, parse_numbers, parse_times
 from .errors import ConfigError, SchemaError
 
 KINDS = ("numeric", "category", "target", "id", "time", "ignore")

@@ -21,6 +21,11 @@ LEAF_MODELS = {"majority": 0, "naive_bayes": 1, "adaptive": 2}
 """Leaf predictors by name -> kernel id. ``adaptive`` uses, per leaf, whichever of the
 other two has been right more often on the records that leaf has seen."""
 
+DETECTORS = {"adwin": 0, "page_hinkley": 1, "off": 2}
+"""Drift detectors by name -> kernel id (the same ids as :data:`stream.drift.DETECTORS`).
+``adwin``: ADWIN (Bifet & Gavalda 2007); ``page_hinkley``: the Page-Hinkley test (Page
+1954); ``off``: no drift handling (a plain Hoeffding tree)."""
+
 NUMERIC_OBSERVERS = {"gaussian": 0, "histogram": 1}
 """Numeric split observers by name -> kernel id. ``gaussian``: per-class normal estimators
 with evenly spaced candidate thresholds; ``histogram``: per-leaf quantile bins with exact
@@ -99,6 +104,19 @@ class TreeSettings:
         (records seen x error rate) are deactivated.
     naive_bayes_after
         Records a leaf must have seen before naive Bayes may predict there.
+    detector
+        Drift detector kept at every node on its error stream: ``adwin``,
+        ``page_hinkley`` or ``off``. On an alarm at a branch an alternate subtree grows
+        beside it (Bifet & Gavalda, IDA 2009).
+    adwin_delta
+        ADWIN's confidence parameter (smaller: fewer, later alarms).
+    page_hinkley_threshold
+        Page-Hinkley's alarm threshold lambda, in units of summed error.
+    swap_after
+        Records both the branch and its alternate must have been scored on before they
+        are compared.
+    swap_significance
+        Significance of the comparison that swaps in (or drops) an alternate.
     """
 
     criterion: str = "info_gain"
@@ -116,6 +134,11 @@ class TreeSettings:
     max_depth: int | None = None
     memory_mb: float = 256.0
     naive_bayes_after: int = 0
+    detector: str = "adwin"
+    adwin_delta: float = 0.002
+    page_hinkley_threshold: float = 50.0
+    swap_after: int = 300
+    swap_significance: float = 0.05
 
     def __post_init__(self) -> None:
         require_choice("criterion", self.criterion, CRITERIA)
@@ -134,6 +157,11 @@ class TreeSettings:
             require_int("max depth", self.max_depth, 1)
         require_float("memory budget (MB)", self.memory_mb, 0.0, math.inf)
         require_int("naive Bayes threshold", self.naive_bayes_after, 0)
+        require_choice("drift detector", self.detector, DETECTORS)
+        require_float("ADWIN delta", self.adwin_delta, 0.0, 1.0)
+        require_float("Page-Hinkley threshold", self.page_hinkley_threshold, 0.0, math.inf)
+        require_int("swap window", self.swap_after, 1)
+        require_float("swap significance", self.swap_significance, 0.0, 1.0)
 
     def to_dict(self) -> dict:
         return dataclasses.asdict(self)
