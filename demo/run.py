@@ -58,7 +58,8 @@ def main(rows: int, seed: int, out_dir: str) -> None:
     _run(["learn", str(data), "--target", "excursion_next_hour",
           "--summary", str(out / "summary.json"), "--snapshots", str(snapshots),
           "--snapshot-every", str(max(rows // 10, 1000)), "--metrics", str(out / "metrics.jsonl"),
-          "--save", str(out / "model.sapwood"), "--quarantine", str(out / "quarantine.jsonl")])
+          "--save", str(out / "model.sapwood"), "--quarantine", str(out / "quarantine.jsonl"),
+          "--events", str(out / "events.jsonl")])
 
     summary = json.loads((out / "summary.json").read_text())
     index = json.loads((snapshots / "index.json").read_text())["snapshots"]
@@ -67,13 +68,18 @@ def main(rows: int, seed: int, out_dir: str) -> None:
     click.echo(_head((snapshots / index[0]["text"]).read_text(), 30))
     click.echo(f"demo: rules now ({summary['learned']:,} records):")
     _run(["rules", str(out / "model.sapwood"), "--top", "8"])
+    report = out / "report.html"
+    _run(["report", str(snapshots), "--metrics", str(out / "metrics.jsonl"),
+          "--events", str(out / "events.jsonl"), "--out", str(report)])
     click.echo(f"""
 demo: done. Where things went:
   data           {data}
   summary        {out / 'summary.json'}   (accuracy {100 * (summary['accuracy'] or 0):.1f}%)
   metrics log    {out / 'metrics.jsonl'}
   snapshots      {snapshots}/   ({len(index)} snapshots; index.json lists them)
+  drift events   {out / 'events.jsonl'}
   saved model    {out / 'model.sapwood'}   (sapwood rules / sapwood score take it)
+  report         {report}   (open it in a browser; it loads nothing from the network)
 The demo's answer key (the rules that generated the data) is in {HERE / 'README.md'}.
 Learned rules are advisory, not safety interlocks: defer to site safety systems, local
 codes and licensed practice.""")

@@ -16,7 +16,8 @@ import click
 from connectors.sources import FORMATS
 
 from .errors import EXIT_USAGE, ConfigError, SapwoodError
-from .settings import CRITERIA, DETECTORS, LEAF_MODELS, NUMERIC_OBSERVERS, TreeSettings
+from .regression_settings import REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS
+from .settings import CRITERIA, DETECTORS, LEAF_MODELS, NUMERIC_OBSERVERS
 
 KINDS = ("numeric", "category", "id", "time", "ignore")
 SAFETY_NOTE = ("Learned rules are advisory, not safety interlocks: defer to site safety "
@@ -59,61 +60,69 @@ class _Progress:
             self.stream.write("\n")
 
 
+# CLI option -> settings field (both tasks read the names they know)
+_SETTING_NAMES = {"criterion": "criterion", "grace_period": "grace_period", "delta": "delta",
+                  "tie_threshold": "tie_threshold", "leaf_model": "leaf_model",
+                  "numeric_observer": "numeric_observer",
+                  "thresholds": "candidate_thresholds", "bins": "histogram_bins",
+                  "max_depth": "max_depth", "memory_mb": "memory_mb", "detector": "detector",
+                  "drift_delta": "adwin_delta", "drift_threshold": "page_hinkley_threshold",
+                  "swap_after": "swap_after", "swap_significance": "swap_significance"}
+
+
 def _tree_options(function):
+    criteria = sorted(set(CRITERIA) | set(REGRESSION_CRITERIA))
+    leaf_models = sorted(set(LEAF_MODELS) | set(REGRESSION_LEAF_MODELS))
     options = [
-        click.option("--criterion", type=click.Choice(sorted(CRITERIA)), default="info_gain",
-                     show_default=True, help="Split merit."),
-        click.option("--grace-period", type=int, default=200, show_default=True,
-                     help="Records a leaf sees between split attempts."),
-        click.option("--delta", type=float, default=1e-7, show_default=True,
-                     help="One minus the confidence of the Hoeffding bound."),
-        click.option("--tie-threshold", type=float, default=0.05, show_default=True,
-                     help="Split anyway once the Hoeffding bound is below this."),
-        click.option("--leaf-model", type=click.Choice(sorted(LEAF_MODELS)),
-                     default="adaptive", show_default=True,
-                     help="How leaves predict: majority class, naive Bayes, or per leaf "
-                          "whichever has been right more often."),
+        click.option("--criterion", type=click.Choice(criteria), default=None,
+                     help="Split merit: info_gain (default) or gini for a class target, "
+                          "variance (default) or deviation for a numeric one."),
+        click.option("--grace-period", type=int, default=None,
+                     help="Records a leaf sees between split attempts [200]."),
+        click.option("--delta", type=float, default=None,
+                     help="One minus the confidence of the Hoeffding bound [1e-7]."),
+        click.option("--tie-threshold", type=float, default=None,
+                     help="Split anyway once the Hoeffding bound is below this [0.05]."),
+        click.option("--leaf-model", type=click.Choice(leaf_models), default=None,
+                     help="How leaves predict. Class target: majority, naive_bayes, or "
+                          "adaptive (default: per leaf, whichever has been right more "
+                          "often). Numeric target: mean, linear or adaptive (default)."),
         click.option("--numeric-observer", type=click.Choice(sorted(NUMERIC_OBSERVERS)),
-                     default="gaussian", show_default=True,
-                     help="How numeric features propose thresholds: per-class Gaussians, "
-                          "or quantile histograms (for skewed sensors)."),
-        click.option("--thresholds", type=int, default=10, show_default=True,
-                     help="Candidate thresholds per numeric feature (gaussian observer)."),
-        click.option("--bins", type=int, default=32, show_default=True,
-                     help="Bins per numeric feature (histogram observer)."),
+                     default=None,
+                     help="How numeric features propose thresholds for a class target: "
+                          "gaussian (default: per-class normal estimators) or histogram "
+                          "(quantile bins, for skewed sensors)."),
+        click.option("--thresholds", type=int, default=None,
+                     help="Candidate thresholds per numeric feature, gaussian observer [10]."),
+        click.option("--bins", type=int, default=None,
+                     help="Bins per numeric feature of the quantile observers [32]."),
         click.option("--max-depth", type=int, default=None, help="Deepest a leaf may be."),
-        click.option("--memory-mb", type=float, default=256.0, show_default=True,
-                     help="Budget for leaf statistics; least promising leaves stop growing "
-                          "beyond it."),
-        click.option("--drift", "detector", type=click.Choice(sorted(DETECTORS)),
-                     default="adwin", show_default=True,
-                     help="Detector watching every node's error; on an alarm an alternate "
-                          "subtree grows beside the node. 'off' for a plain Hoeffding tree."),
-        click.option("--drift-delta", type=float, default=0.002, show_default=True,
-                     help="ADWIN's confidence: smaller means fewer, later alarms."),
-        click.option("--drift-threshold", type=float, default=50.0, show_default=True,
-                     help="Page-Hinkley's alarm threshold (summed error)."),
-        click.option("--swap-after", type=int, default=300, show_default=True,
+        click.option("--memory-mb", type=float, default=None,
+                     help="Budget for leaf statistics [256]; beyond it the least promising "
+                          "leaves stop growing."),
+        click.option("--drift", "detector", type=click.Choice(sorted(DETECTORS)), default=None,
+                     help="Detector on every node's error: adwin (default) or page_hinkley; "
+                          "on an alarm an alternate subtree grows beside the node. 'off' for "
+                          "a plain Hoeffding tree."),
+        click.option("--drift-delta", type=float, default=None,
+                     help="ADWIN's confidence [0.002]: smaller means fewer, later alarms."),
+        click.option("--drift-threshold", type=float, default=None,
+                     help="Page-Hinkley's alarm threshold in summed error [50]."),
+        click.option("--swap-after", type=int, default=None,
                      help="Records both a node and its alternate must have scored before "
-                          "they are compared."),
-        click.option("--swap-significance", type=float, default=0.05, show_default=True,
-                     help="Significance of the test that swaps in or drops an alternate."),
+                          "they are compared [300]."),
+        click.option("--swap-significance", type=float, default=None,
+                     help="Significance of the test that swaps in or drops an alternate "
+                          "[0.05]."),
     ]
     for option in reversed(options):
         function = option(function)
     return function
 
 
-def _settings(kw: dict) -> TreeSettings:
-    return TreeSettings(criterion=kw["criterion"], grace_period=kw["grace_period"],
-                        delta=kw["delta"], tie_threshold=kw["tie_threshold"],
-                        leaf_model=kw["leaf_model"], numeric_observer=kw["numeric_observer"],
-                        candidate_thresholds=kw["thresholds"], histogram_bins=kw["bins"],
-                        max_depth=kw["max_depth"], memory_mb=kw["memory_mb"],
-                        detector=kw["detector"], adwin_delta=kw["drift_delta"],
-                        page_hinkley_threshold=kw["drift_threshold"],
-                        swap_after=kw["swap_after"],
-                        swap_significance=kw["swap_significance"])
+def _options(kw: dict) -> dict:
+    """The tree options the user gave, under their settings names."""
+    return {_SETTING_NAMES[k]: v for k, v in kw.items() if v is not None}
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -130,6 +139,8 @@ def cli() -> None:
 @cli.command()
 @click.argument("sources", nargs=-1, required=True, metavar="SOURCE...")
 @click.option("--target", required=True, help="Field to predict.")
+@click.option("--task", type=click.Choice(["classification", "regression"]), default=None,
+              help="Predict a class or a number (default: from the target's values).")
 @click.option("--format", "fmt", type=click.Choice(sorted(FORMATS)), default=None,
               help="Input format (default: from each file name; sniffed on stdin).")
 @click.option("--schema", "schema_path", type=click.Path(dir_okay=False),
@@ -144,6 +155,10 @@ def cli() -> None:
               help="Directory for rule snapshots.")
 @click.option("--snapshot-every", type=int, default=None,
               help="Records between snapshots (default 10000 with --snapshots).")
+@click.option("--snapshot-seconds", type=float, default=None,
+              help="Also take a snapshot when this many seconds have passed since the last.")
+@click.option("--snapshot-history", is_flag=True,
+              help="With --keep-snapshots: also keep a thinned history of older ones.")
 @click.option("--keep-snapshots", type=int, default=None,
               help="Keep only the newest this many snapshots.")
 @click.option("--metrics", "metrics_path", type=click.Path(dir_okay=False),
@@ -166,9 +181,9 @@ def cli() -> None:
               help="Records read per batch (memory vs. call overhead; results are equal).")
 @click.option("--quiet", "-q", is_flag=True, help="No closing report on stderr.")
 @_tree_options
-def learn(sources, target, fmt, schema_path, kinds, summary_path, save_path, snapshot_dir,
-          snapshot_every, keep_snapshots, metrics_path, metrics_every, window,
-          quarantine_path, strict, predictions_path, events_path, batch_rows, quiet,
+def learn(sources, target, task, fmt, schema_path, kinds, summary_path, save_path,
+          snapshot_dir, snapshot_every, snapshot_seconds, snapshot_history, keep_snapshots,
+          metrics_path, metrics_every, window, quarantine_path, strict, predictions_path, events_path, batch_rows, quiet,
           **tree) -> None:
     """Learn SOURCE... (files in order, or - for stdin) to the end, scoring each record first.
 
@@ -180,10 +195,12 @@ def learn(sources, target, fmt, schema_path, kinds, summary_path, save_path, sna
 
     job = LearnJob(
         sources=list(sources), target=target, fmt=fmt, schema_path=schema_path,
-        declared=_parse_kinds(kinds), settings=_settings(tree), summary_path=summary_path,
+        declared=_parse_kinds(kinds), options=_options(tree), task=task,
+        summary_path=summary_path,
         save_path=save_path, snapshot_dir=snapshot_dir,
         snapshot_every=snapshot_every if snapshot_every is not None
         else (10000 if snapshot_dir else 0),
+        snapshot_seconds=snapshot_seconds or 0.0, snapshot_history=snapshot_history,
         snapshot_keep=keep_snapshots, metrics_path=metrics_path, metrics_every=metrics_every,
         quarantine_path=quarantine_path, strict=strict, predictions_path=predictions_path,
         events_path=events_path, window=window, batch_rows=batch_rows)
@@ -201,10 +218,14 @@ def _percent(value) -> str:
 def _closing_report(s: dict) -> str:
     lines = [f"sapwood: learned {s['learned']:,} of {s['records']:,} records in "
              f"{s['seconds']:.2f} s ({(s['records_per_second'] or 0):,.0f} records/s)"]
-    lines.append(f"  accuracy {_percent(s['accuracy'])}, kappa "
-                 f"{'n/a' if s['kappa'] is None else format(s['kappa'], '.3f')}, "
-                 f"last {1000 if s.get('window_accuracy') is not None else 0:,} records "
-                 f"{_percent(s.get('window_accuracy'))}; {s['leaves']} rules, depth {s['depth']}")
+    rules = f"{s['leaves']} rule{'s' if s['leaves'] != 1 else ''}, depth {s['depth']}"
+    if s.get("task") == "regression":
+        lines.append(f"  mean absolute error {_number(s.get('mae'))}, RMSE "
+                     f"{_number(s.get('rmse'))}, R^2 {_number(s.get('r2'))}; {rules}")
+    else:
+        lines.append(f"  accuracy {_percent(s.get('accuracy'))}, kappa "
+                     f"{_number(s.get('kappa'))}, last {s.get('window', 1000):,} records "
+                     f"{_percent(s.get('window_accuracy'))}; {rules}")
     if s.get("drift_alarms"):
         lines.append(f"  drift: {s['drift_alarms']:,} alarms, {s['alternates_started']:,} "
                      f"alternate subtrees started, {s['swaps']:,} swapped in")
@@ -215,6 +236,10 @@ def _closing_report(s: dict) -> str:
         if path and name != "quarantine":
             lines.append(f"  {name}: {path}")
     return "\n".join(lines)
+
+
+def _number(value) -> str:
+    return "n/a" if value is None else f"{value:.3f}"
 
 
 @cli.command()
@@ -286,6 +311,19 @@ def schema(sources, target, fmt, kinds) -> None:
     finally:
         source.close()
     raise SapwoodError("no records to infer a schema from")
+
+
+def _register_commands() -> None:
+    """Commands that live in their own modules (operator views, the benchmark)."""
+    from .bench import command as bench_command
+    from .views_cli import COMMANDS as view_commands
+
+    for name, command in view_commands.items():
+        cli.add_command(command, name)
+    cli.add_command(bench_command, "bench")
+
+
+_register_commands()
 
 
 def main(argv: list[str] | None = None) -> None:

@@ -4,7 +4,8 @@
 out and returns the summary (also written as JSON when asked). The clock is passed in,
 so tests can run on a fake one. Each record is scored before it is learned; batches are
 cut at metric-log and snapshot boundaries so that every logged value and every snapshot
-is taken exactly at its record count, whatever the batch size.
+is taken exactly at its record count, whatever the batch size. The schema, when not
+declared, is inferred from the first ``INFER_ROWS`` records, whatever the batch size.
 """
 
 from __future__ import annotations
@@ -15,34 +16,42 @@ import math
 import sys
 import time
 from datetime import datetime, timezone
-from typing import Callable, TextIO
+from pathlib import Path
+from typing import Any, Callable, TextIO
 
 import numpy as np
+import pandas as pd
 
+from connectors.base import RawBatch
 from connectors.quarantine import QuarantineWriter
 from connectors.sources import open_sources
 
 from .atomic import write_atomic
-from .classifier import TreeClassifier
 from .encoding import EncodedBatch, Encoder
 from .errors import ConfigError, RecordError
-from .metrics import ClassificationScore
-from .rules import (conditions_text, extract_rules, node_conditions, render_text, rule_id,
-                    rules_payload)
+from .regression_settings import RegressionSettings
+from .rules import conditions_text, node_conditions, render_text, rules_payload
 from .saved_model import save_model
 from .schema import Schema, infer_schema, load_schema
-from .settings import TreeSettings, require_int
-from .snapshots import SnapshotStore
+from .settings import TreeSettings, require_float, require_int
+from .snapshots import SnapshotSchedule, SnapshotStore
+from .tasks import TASKS
 
 DEFAULT_QUARANTINE = "sapwood-quarantine.jsonl"
+INFER_ROWS = 10_000
+"""Records the schema is inferred from when it is not declared."""
 
 
 @dataclasses.dataclass
 class LearnJob:
     """What a learning run reads, how it learns and where its outputs go.
 
-    Paths left as None are not written, except the quarantine: rejected records always
-    go to a file (``DEFAULT_QUARANTINE`` unless named), created at the first reject.
+    ``settings`` fixes the learner's settings outright (a :class:`TreeSettings` for a
+    class target, a :class:`RegressionSettings` for a numeric one); otherwise
+    ``options`` (the user's choices by name, e.g. ``{"grace_period": 100}``) are applied
+    to the defaults of whichever task the target calls for. Paths left as None are not
+    written, except the quarantine: rejected records always go to a file
+    (``DEFAULT_QUARANTINE`` unless named), created at the first reject.
     """
 
     sources: list[str]
@@ -51,12 +60,15 @@ class LearnJob:
     schema_path: str | None = None
     declared: dict[str, str] = dataclasses.field(default_factory=dict)
     task: str | None = None
-    settings: TreeSettings = dataclasses.field(default_factory=TreeSettings)
+    settings: TreeSettings | RegressionSettings | None = None
+    options: dict[str, Any] = dataclasses.field(default_factory=dict)
     summary_path: str | None = None
     save_path: str | None = None
     snapshot_dir: str | None = None
     snapshot_every: int = 0
+    snapshot_seconds: float = 0.0
     snapshot_keep: int | None = None
+    snapshot_history: bool = False
     metrics_path: str | None = None
     metrics_every: int = 1000
     quarantine_path: str | None = None
@@ -69,10 +81,26 @@ class LearnJob:
 
     def __post_init__(self) -> None:
         require_int("snapshot interval", self.snapshot_every, 0)
+        require_float("snapshot interval in seconds", self.snapshot_seconds, 0.0, math.inf,
+                      low_open=False)
         require_int("metrics interval", self.metrics_every, 1)
         require_int("window", self.window, 1)
-        if self.snapshot_every and not self.snapshot_dir:
+        if (self.snapshot_every or self.snapshot_seconds) and not self.snapshot_dir:
             raise ConfigError("a snapshot interval needs a snapshot directory")
+
+    def learner_settings(self, task: str):
+        """The settings the learner of ``task`` runs with."""
+        from .tasks import classifier_settings, regressor_settings
+
+        if self.settings is not None:
+            wanted = TreeSettings if task == "classification" else RegressionSettings
+            if not isinstance(self.settings, wanted):
+                raise ConfigError(f"the target calls for {task} but the settings given are "
+                                  f"{type(self.settings).__name__}")
+            return self.settings
+        if task == "classification":
+            return classifier_settings(self.options)
+        return regressor_settings(self.options)
 
 
 class _LazyQuarantine:
@@ -107,23 +135,17 @@ class _PredictionSink:
         self._own = path != "-"
         self._header = True
 
-    def write(self, batch: EncodedBatch, labels: list[str], scored, start: int) -> None:
-        import pandas as pd
-
-        classes = np.array(labels + [""], dtype=object)
-        frame = pd.DataFrame({
-            "origin": batch.origin, "line": batch.lines,
-            "predicted": classes[scored.pred], "confidence": np.round(scored.confidence, 6),
-            "rule": [rule_id(n) for n in scored.leaf],
-        })
+    def write(self, batch: EncodedBatch, columns: dict) -> None:
+        frame = pd.DataFrame({"origin": batch.origin, "line": batch.lines, **columns})
         if batch.ids is not None:
             frame.insert(2, "id", batch.ids)
+        if not len(frame):
+            return
         if self.csv:
             self._out.write(frame.to_csv(index=False, header=self._header))
         else:
-            self._out.write(frame.to_json(orient="records", lines=True))
-            if len(frame) and not frame.empty:
-                self._out.write("\n")
+            text = frame.to_json(orient="records", lines=True)
+            self._out.write(text if text.endswith("\n") else text + "\n")
         self._header = False
         self._out.flush()
 
@@ -145,6 +167,10 @@ def _iso(seconds: float) -> str:
         .replace("+00:00", "Z")
 
 
+def _first_reject(rejects):
+    return min(rejects, key=lambda r: (r.line, r.field or ""))
+
+
 class LearnRun:
     """State of one learning run; :meth:`run` drives it to the end of the stream."""
 
@@ -161,11 +187,20 @@ class LearnRun:
             raise ConfigError(f"the schema's target is {self.schema.target!r} but the "
                               f"target asked for is {job.target!r}")
         self.encoder: Encoder | None = None
-        self.model: TreeClassifier | None = None
-        self.score = ClassificationScore(job.window, job.fading, log_every=job.metrics_every)
+        self.task = None
         self.quarantine = _LazyQuarantine(job.quarantine_path or DEFAULT_QUARANTINE)
-        self.snapshots = SnapshotStore(job.snapshot_dir, keep=job.snapshot_keep) \
-            if job.snapshot_dir else None
+        self.snapshots = None
+        if job.snapshot_dir:
+            try:
+                Path(job.snapshot_dir).mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise ConfigError(f"cannot use snapshot directory {job.snapshot_dir!r}: "
+                                  f"{exc.strerror or exc}") from exc
+            self.snapshots = SnapshotStore(job.snapshot_dir, keep=job.snapshot_keep,
+                                           history=job.snapshot_history)
+        self.schedule = SnapshotSchedule(job.snapshot_every, job.snapshot_seconds,
+                                         clock=clock) \
+            if job.snapshot_every or job.snapshot_seconds else None
         self.metrics_out = open(job.metrics_path, "w", encoding="utf-8") \
             if job.metrics_path else None
         self.predictions = _PredictionSink(job.predictions_path, self.stdout) \
@@ -174,23 +209,30 @@ class LearnRun:
             if job.events_path else None
         self.recent_events: list[dict] = []
         self.records = 0
+        self.snapshots_written = 0
+        self.last_snapshot_records: int | None = None
+        self.saved = False
         self.last_time: float | None = None
         self.started = 0.0
         self.finished = 0.0
         self.startup_seconds = 0.0
+        self.source = None
         if self.schema is not None:
-            self._start_model(self.schema)
+            self._start(self.schema)
 
     # ------------------------------------------------------------------ setup
-    def _start_model(self, schema: Schema) -> None:
-        if schema.task != "classification":
-            raise ConfigError(f"target {schema.target!r} looks numeric (task regression); "
-                              "only classification is available in this version: declare "
-                              "the task as classification if its values are class labels")
+    def _start(self, schema: Schema) -> None:
+        job = self.job
         self.schema = schema
         self.encoder = Encoder(schema)
-        self.model = TreeClassifier(schema.feature_names, schema.feature_kinds,
-                                    self.job.settings)
+        settings = job.learner_settings(schema.task)
+        self.task = TASKS[schema.task].create(schema, settings, job.window, job.fading,
+                                              job.metrics_every)
+
+    @property
+    def model(self):
+        """The learner (a TreeClassifier or TreeRegressor), None before the schema."""
+        return self.task.model if self.task is not None else None
 
     # ------------------------------------------------------------------ the run
     def run(self) -> dict:
@@ -200,30 +242,32 @@ class LearnRun:
         warm_up()
         self.startup_seconds = self.clock() - warm
         self.started = self.clock()
-        source = open_sources(job.sources, job.fmt, job.batch_rows)
+        self.source = open_sources(job.sources, job.fmt, job.batch_rows)
         try:
-            for batch in source.batches():
-                if self.model is None:
-                    self._start_model(infer_schema(batch.frame, job.target, job.task,
-                                                   job.declared))
-                self._consume(self.encoder.encode(batch))
-                if self.progress is not None:
-                    self.progress(self._progress_facts())
+            pending: list[RawBatch] = []
+            for batch in self.source.batches():
+                if self.task is None:
+                    pending.append(batch)
+                    if sum(len(b) for b in pending) < INFER_ROWS:
+                        continue
+                    self._infer(pending)
+                    for held in pending:
+                        self._consume(held)
+                    pending = []
+                    continue
+                self._consume(batch)
+            if pending:
+                self._infer(pending)
+                for held in pending:
+                    self._consume(held)
         finally:
-            source.close()
-            self.quarantine.close()
-            if self.metrics_out is not None:
-                self.metrics_out.close()
-            if self.predictions is not None:
-                self.predictions.close()
-            if self.events_out is not None:
-                self.events_out.close()
+            self.source.close()
+            self._close_outputs()
         self.finished = self.clock()
-        if self.snapshots is not None and self.model is not None:
-            last = self.snapshots.entries()
-            if not last or last[-1]["records"] != self.model.records_learned:
-                self._snapshot()
-        if job.save_path and self.model is not None:
+        if self.snapshots is not None and self.task is not None \
+                and self.last_snapshot_records != self.task.records_learned:
+            self._snapshot()
+        if job.save_path and self.task is not None:
             self.save(job.save_path)
         summary = self.summary()
         if job.summary_path:
@@ -231,31 +275,50 @@ class LearnRun:
                                                       default=_json_default) + "\n")
         return summary
 
-    def _consume(self, batch: EncodedBatch) -> None:
+    def _infer(self, pending: list[RawBatch]) -> None:
+        frames = [b.frame for b in pending if len(b.frame)]
+        if not frames:     # nothing but rejects so far: infer from what there is
+            frames = [pending[0].frame]
+        prefix = pd.concat(frames, ignore_index=True).iloc[:INFER_ROWS]
+        self._start(infer_schema(prefix, self.job.target, self.job.task, self.job.declared))
+
+    def _close_outputs(self) -> None:
+        self.quarantine.close()
+        for out in (self.metrics_out, self.events_out):
+            if out is not None:
+                out.close()
+        if self.predictions is not None:
+            self.predictions.close()
+
+    def _consume(self, raw: RawBatch) -> None:
         job = self.job
+        batch = self.encoder.encode(raw)
         if batch.rejects and job.strict:
-            raise RecordError(batch.rejects[0].message() + " (strict mode stops here)")
+            raise RecordError(_first_reject(batch.rejects).message() +
+                              " (strict mode stops here)")
         before = self.quarantine.count
-        self.quarantine.write(batch.rejects)
+        self.quarantine.write(sorted(batch.rejects, key=lambda r: (r.line, r.field or "")))
         self.records += len(batch) + self.quarantine.count - before
         start = 0
         n = len(batch)
         while start < n:
             stop = min(n, start + self._until_boundary())
             part = slice(start, stop)
-            learned_before = self.model.records_learned
-            scored = self.model.learn(batch.X[part], batch.y[part], self.encoder.classes)
+            learned_before = self.task.records_learned
+            scored = self.task.learn(batch.X[part], batch.y[part], self.encoder)
             self._note_time(batch.times, stop - 1)
             self._write_events(batch, start - learned_before)
-            rows = self.score.update(batch.y[part], scored.pred, len(self.encoder.classes))
+            rows = self.task.update_score(batch.y[part], scored, self.encoder)
             if self.predictions is not None:
-                self.predictions.write(_slice_batch(batch, part), self.encoder.classes,
-                                       scored, start)
+                self.predictions.write(_slice_batch(batch, part),
+                                       self.task.prediction_columns(scored, self.encoder))
             for row in rows:
                 self._log(row)
-            if job.snapshot_every and self.model.records_learned % job.snapshot_every == 0:
+            if self.schedule is not None and self.schedule.due(self.task.records_learned):
                 self._snapshot()
             start = stop
+        if self.progress is not None:
+            self.progress(self._progress_facts())
 
     def _note_time(self, times: np.ndarray | None, index: int) -> None:
         """Remember the latest record time seen (the data's own clock), if any."""
@@ -265,7 +328,7 @@ class LearnRun:
     def _write_events(self, batch: EncodedBatch, offset: int) -> None:
         """Drift events of the last learn call: to the events file and the next snapshot.
         ``offset`` turns a record count into an index of ``batch``."""
-        for event in self.model.take_events():
+        for event in self.task.take_events():
             index = event.record + offset
             when = None
             if batch.times is not None and 0 <= index < len(batch.times) \
@@ -277,7 +340,7 @@ class LearnRun:
                 "time_source": "data" if when else "clock", "kind": event.kind,
                 "node": event.node,
                 "alternate": event.other if event.other >= 0 else None,
-                "detector": self.job.settings.detector,
+                "detector": self.task.settings.detector,
                 "error_before": round(event.before, 6), "error_after": round(event.after, 6),
                 "where": conditions_text(conditions),
                 "path": [c.to_dict() for c in conditions],
@@ -289,11 +352,12 @@ class LearnRun:
             self.events_out.flush()
 
     def _until_boundary(self) -> int:
-        learned = self.model.records_learned
-        gaps = [self.job.metrics_every - learned % self.job.metrics_every]
-        if self.job.snapshot_every:
-            gaps.append(self.job.snapshot_every - learned % self.job.snapshot_every)
-        return min(gaps)
+        learned = self.task.records_learned
+        gap = self.job.metrics_every - learned % self.job.metrics_every
+        if self.schedule is None:
+            return gap
+        to_snapshot = self.schedule.records_to_boundary(learned)
+        return min(gap, to_snapshot) if to_snapshot else gap
 
     # ------------------------------------------------------------------ outputs
     def _log(self, row: dict) -> None:
@@ -308,35 +372,37 @@ class LearnRun:
 
     def header(self) -> dict:
         """Facts that head a rule listing or snapshot."""
-        result = self.score.result(self.encoder.classes if self.encoder else [])
-        return {
-            "target": self.job.target, "task": "classification",
-            "classes": self.encoder.classes if self.encoder else [],
-            "records": self.model.records_learned if self.model else 0,
-            "accuracy": result["accuracy"],
-            "data_time": _iso(self.last_time) if self.last_time is not None else None,
-        }
+        header = {"target": self.job.target,
+                  "task": self.task.name if self.task else None,
+                  "classes": self.encoder.classes if self.encoder else [],
+                  "records": self.task.records_learned if self.task else 0,
+                  "data_time": _iso(self.last_time) if self.last_time is not None else None}
+        if self.task is not None:
+            header.update(self.task.headline(self.task.result(self.encoder)))
+        return header
 
     def rules(self):
-        return extract_rules(self.model, self.encoder.categories)
+        return self.task.rules(self.encoder.categories)
 
     def _snapshot(self) -> None:
         rules = self.rules()
         header = self.header()
-        result = self.score.result(self.encoder.classes)
+        result = self.task.result(self.encoder)
         payload = rules_payload(rules, {k: v for k, v in header.items() if k != "records"})
         payload["metrics"] = result
         payload["tree"] = self._tree_facts()
         payload["events"] = self.recent_events
+        payload["headline"] = {**self.task.headline(result), "rules": len(rules),
+                               "leaves": self.model.n_leaves, "depth": self.model.depth}
         self.recent_events = []
-        payload["headline"] = {
-            "accuracy": result["accuracy"], "kappa": result["kappa"],
-            "window_accuracy": result["window_accuracy"], "rules": len(rules),
-            "leaves": self.model.n_leaves, "depth": self.model.depth,
-        }
         now = self.wall()
         text = render_text(rules, {**header, "written_at": _iso(now)})
-        self.snapshots.write(self.model.records_learned, payload, text, now)
+        learned = self.task.records_learned
+        self.snapshots.write(learned, payload, text, now)
+        if self.schedule is not None:
+            self.schedule.taken(learned)
+        self.snapshots_written += 1
+        self.last_snapshot_records = learned
 
     def _tree_facts(self) -> dict:
         m = self.model
@@ -345,54 +411,64 @@ class LearnRun:
 
     def _progress_facts(self) -> dict:
         elapsed = max(self.clock() - self.started, 1e-9)
-        return {"records": self.records, "quarantined": self.quarantine.count,
-                "seconds": elapsed, "rate": self.records / elapsed}
+        facts = {"records": self.records, "quarantined": self.quarantine.count,
+                 "seconds": elapsed, "rate": self.records / elapsed}
+        bytes_read = getattr(self.source, "bytes_read", None)
+        if callable(bytes_read):
+            facts["bytes_read"] = bytes_read()
+        return facts
 
     def save(self, path: str) -> None:
         """Write the learner, encoder, schema and metrics to a model file."""
-        save_model(path, self.schema, self.encoder, self.model, self.score,
-                   {"records": self.records, "quarantined": self.quarantine.count,
-                    "target": self.job.target})
+        save_model(path, self.schema, self.encoder, self.task, {
+            "records": self.records, "quarantined": self.quarantine.count,
+            "target": self.job.target})
+        self.saved = True
 
     def summary(self) -> dict:
         """The run's summary (the contract other tools rely on, plus details)."""
         seconds = max(self.finished - self.started, 0.0)
-        labels = self.encoder.classes if self.encoder else []
-        result = self.score.result(labels)
+        task = self.task
         m = self.model
         drift = m.counters() if m else {}
         summary = {
             "records": self.records,
-            "learned": m.records_learned if m else 0,
+            "learned": task.records_learned if task else 0,
             "quarantined": self.quarantine.count,
             "task": self.schema.task if self.schema else None,
             "target": self.job.target,
-            "accuracy": result["accuracy"], "kappa": result["kappa"],
-            "kappa_m": result["kappa_m"], "balanced_accuracy": result["balanced_accuracy"],
-            "window_accuracy": result["window_accuracy"],
-            "fading_accuracy": result["fading_accuracy"],
+        }
+        if task is not None:
+            summary.update(task.summary_figures(task.result(self.encoder)))
+        elif (self.job.task or "classification") == "classification":
+            summary.update({"accuracy": None, "kappa": None})
+        else:
+            summary.update({"mae": None, "rmse": None, "r2": None})
+        settings = task.settings if task else None
+        summary.update({
             "leaves": m.n_leaves if m else 0, "depth": m.depth if m else 0,
             "drift_alarms": drift.get("drift_alarms", 0),
             "swaps": drift.get("alternates_swapped", 0),
             "alternates_started": drift.get("alternates_started", 0),
             "alternates_dropped": drift.get("alternates_dropped", 0),
-            "detector": self.job.settings.detector,
+            "detector": getattr(settings, "detector", "off") if settings else None,
             "seconds": round(seconds, 6),
             "records_per_second": round(self.records / seconds, 1) if seconds > 0 else None,
             "startup_seconds": round(self.startup_seconds, 3),
-            "classes": labels,
-            "per_class": result["per_class"], "confusion": result["confusion"],
+            "window": self.job.window,
+            "classes": self.encoder.classes if self.encoder else [],
             "tree": self._tree_facts() if m else None,
             "schema": self.schema.to_dict() if self.schema else None,
             "unknown_fields": dict(self.encoder.unknown_fields) if self.encoder else {},
             "sources": list(self.job.sources),
             "outputs": {
                 "quarantine": self.quarantine.path if self.quarantine.count else None,
-                "snapshots": self.job.snapshot_dir, "metrics": self.job.metrics_path,
-                "model": self.job.save_path, "predictions": self.job.predictions_path,
-                "events": self.job.events_path,
+                "snapshots": self.job.snapshot_dir if self.snapshots_written else None,
+                "metrics": self.job.metrics_path, "events": self.job.events_path,
+                "model": self.job.save_path if self.saved else None,
+                "predictions": self.job.predictions_path,
             },
-        }
+        })
         return summary
 
 
@@ -409,15 +485,22 @@ def warm_up() -> None:
     """Load (or, the first time, compile) the kernels before any source is opened."""
     if _WARM["done"]:
         return
+    from .classifier import TreeClassifier
+    from .metrics import ClassificationScore, RegressionScore
+    from .regressor import warm_up as warm_regressor
+
     X = np.array([[0.5, 1.0], [0.25, 0.0], [np.nan, 1.0]])
     y = np.array([0, 1, 0], np.int32)
     for observer in ("gaussian", "histogram"):
-        model = TreeClassifier(["a", "b"], ["numeric", "category"],
-                               TreeSettings(numeric_observer=observer, grace_period=1))
-        scored = model.learn(X, y, ["p", "q"])
-        model.predict(X)
-    score = ClassificationScore(2, 0.9, log_every=1)
-    score.update(y, scored.pred, 2)
+        for detector in ("adwin", "page_hinkley", "off"):
+            model = TreeClassifier(["a", "b"], ["numeric", "category"],
+                                   TreeSettings(numeric_observer=observer, grace_period=1,
+                                                detector=detector))
+            scored = model.learn(X, y, ["p", "q"])
+            model.predict(X)
+    ClassificationScore(2, 0.9, log_every=1).update(y, scored.pred, 2)
+    RegressionScore(2, 0.9, log_every=1).update(np.ones(3), np.zeros(3))
+    warm_regressor()
     _WARM["done"] = True
 
 

@@ -7,11 +7,11 @@ import os
 
 from .errors import InputError, ModelFileError
 from .model_file import MAGIC
-from .rules import Rule, extract_rules, rules_from_payload
+from .rules import Rule, rules_from_payload
 from .snapshots import SnapshotStore
 
-_HEADER_KEYS = ("target", "task", "classes", "records", "accuracy", "data_time",
-                "written_at", "sequence")
+_HEADER_KEYS = ("target", "task", "classes", "records", "accuracy", "kappa",
+                "window_accuracy", "mae", "rmse", "r2", "data_time", "written_at", "sequence")
 
 
 def load_rules(path: str) -> tuple[dict, list[Rule]]:
@@ -31,11 +31,11 @@ def load_rules(path: str) -> tuple[dict, list[Rule]]:
         from .saved_model import load_model
 
         saved = load_model(path)
-        result = saved.score.result(saved.encoder.classes)
-        header = {"target": saved.schema.target, "task": saved.schema.task,
-                  "classes": saved.encoder.classes,
-                  "records": saved.model.records_learned, "accuracy": result["accuracy"]}
-        return header, extract_rules(saved.model, saved.encoder.categories)
+        task = saved.task
+        header = {"target": saved.schema.target, "task": task.name,
+                  "classes": saved.encoder.classes, "records": task.records_learned,
+                  **task.headline(task.result(saved.encoder))}
+        return header, task.rules(saved.encoder.categories)
     try:
         with open(path, encoding="utf-8") as handle:
             payload = json.load(handle)

@@ -84,6 +84,7 @@ class Rule:
     active: bool
     drift: str = "stable"
     replaced_at: int | None = None
+    estimate: dict | None = None
 
     @property
     def accuracy(self) -> float | None:
@@ -98,7 +99,7 @@ class Rule:
                 "scored": self.scored, "hits": self.hits, "accuracy": _round(self.accuracy),
                 "depth": self.depth, "created_at": self.created_at,
                 "leaf_model": self.leaf_model, "active": self.active, "drift": self.drift,
-                "replaced_at": self.replaced_at}
+                "replaced_at": self.replaced_at, "estimate": self.estimate}
 
     @classmethod
     def from_dict(cls, data: dict) -> "Rule":
@@ -109,7 +110,8 @@ class Rule:
                    class_counts=dict(data["class_counts"]), scored=data["scored"],
                    hits=data["hits"], depth=data["depth"], created_at=data["created_at"],
                    leaf_model=data["leaf_model"], active=data["active"],
-                   drift=data.get("drift", "stable"), replaced_at=data.get("replaced_at"))
+                   drift=data.get("drift", "stable"), replaced_at=data.get("replaced_at"),
+                   estimate=data.get("estimate"))
 
 
 def _round(value: float | None, digits: int = 6) -> float | None:
@@ -367,9 +369,11 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
     if header.get("shown") is not None:
         facts.append(f"the {len(rules)} rules covering the most records")
     else:
-        facts.append(f"{len(rules)} rule{'s' if len(rules) != 1 else ''}")
+        facts.append(f"{len(rules)} rule" + ("s" if len(rules) != 1 else ""))
     if header.get("accuracy") is not None:
         facts.append(f"prequential accuracy {100 * header['accuracy']:.1f}%")
+    if header.get("rmse") is not None:
+        facts.append(f"prequential RMSE {format_number(header['rmse'])}")
     if header.get("written_at"):
         facts.append(str(header["written_at"]))
     lines.append(" | ".join(facts))
@@ -383,19 +387,26 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
         for i, group in enumerate(groups):
             lead = f"{r.id:<{width}}IF   " if i == 0 else f"{pad}AND  "
             lines.append(lead + format_condition(group))
-        outcome = "(no records yet)" if r.predict is None else f"{target} = {r.predict}"
-        lines.append(f"{pad}THEN {outcome}")
-        detail = (f"confidence {100 * r.confidence:.1f}%, coverage {100 * r.coverage:.1f}%, "
-                  f"{_count(r.records)} records")
-        split = " / ".join(f"{label} {_count(v)}" for label, v in r.class_counts.items()
-                           if v >= 0.5)
-        if split:
-            detail += f" ({split})"
-        lines.append(f"{pad}     {detail}")
         extra = []
-        if r.accuracy is not None:
-            extra.append(f"scored right {100 * r.accuracy:.1f}% of {_count(r.scored)}")
-        if r.leaf_model == "naive_bayes":
+        if r.estimate is not None:
+            lines.append(f"{pad}THEN {target} = {r.estimate.get('shown', '?')}")
+            detail = f"coverage {100 * r.coverage:.1f}%, {_count(r.records)} records"
+            if r.estimate.get("mae") is not None:
+                extra.append(f"mean absolute error {format_number(r.estimate['mae'])} over "
+                             f"{_count(r.scored)} scored")
+        else:
+            outcome = "(no records yet)" if r.predict is None else f"{target} = {r.predict}"
+            lines.append(f"{pad}THEN {outcome}")
+            detail = (f"confidence {100 * r.confidence:.1f}%, coverage "
+                      f"{100 * r.coverage:.1f}%, {_count(r.records)} records")
+            split = " / ".join(f"{label} {_count(v)}" for label, v in r.class_counts.items()
+                               if v >= 0.5)
+            if split:
+                detail += f" ({split})"
+            if r.accuracy is not None:
+                extra.append(f"scored right {100 * r.accuracy:.1f}% of {_count(r.scored)}")
+        lines.append(f"{pad}     {detail}")
+        if r.leaf_model == "naive_bayes" and r.estimate is None:
             extra.append("naive Bayes refines within the rule")
         if not r.active:
             extra.append("not growing")

@@ -2,7 +2,7 @@
 
 The container is :mod:`stream.model_file` (versioned, checksummed, never pickle). The
 encoder's code books travel with the tree, so a scorer encodes new records exactly as
-the learner did.
+the learner did. Either task (class or numeric target) is saved the same way.
 """
 
 from __future__ import annotations
@@ -14,12 +14,16 @@ import numpy as np
 from .classifier import TreeClassifier
 from .encoding import Encoder
 from .errors import ModelFileError
-from .metrics import ClassificationScore
+from .metrics import ClassificationScore, RegressionScore
 from .model_file import read_model_file, write_model_file
+from .regressor import TreeRegressor
 from .schema import Schema
+from .tasks import ClassificationTask, RegressionTask
 
 MODEL_KIND = "sapwood-model"
 _SCORE_PREFIX = "score."
+_LEARNERS = {"classification": (TreeClassifier, ClassificationScore, ClassificationTask),
+             "regression": (TreeRegressor, RegressionScore, RegressionTask)}
 
 
 @dataclasses.dataclass
@@ -28,24 +32,30 @@ class SavedModel:
 
     schema: Schema
     encoder: Encoder
-    model: TreeClassifier
-    score: ClassificationScore
+    task: ClassificationTask | RegressionTask
     facts: dict
 
+    @property
+    def model(self):
+        return self.task.model
 
-def save_model(path: str, schema: Schema, encoder: Encoder, model: TreeClassifier,
-               score: ClassificationScore, facts: dict) -> None:
+    @property
+    def score(self):
+        return self.task.score
+
+
+def save_model(path: str, schema: Schema, encoder: Encoder, task, facts: dict) -> None:
     """Write a model file atomically; ``facts`` are JSON-able extras (record counts...)."""
-    tree_meta, arrays = model.state()
+    tree_meta, arrays = task.model.state()
     score_meta = {}
-    for key, value in score.state_dict().items():
+    for key, value in task.score.state_dict().items():
         if isinstance(value, np.ndarray):
             arrays[_SCORE_PREFIX + key] = value
         else:
             score_meta[key] = value
     write_model_file(path, MODEL_KIND, {
-        "tree": tree_meta, "schema": schema.to_dict(), "encoder": encoder.state_dict(),
-        "score": score_meta, "facts": facts,
+        "task": task.name, "tree": tree_meta, "schema": schema.to_dict(),
+        "encoder": encoder.state_dict(), "score": score_meta, "facts": facts,
     }, arrays)
 
 
@@ -54,13 +64,14 @@ def load_model(path: str) -> SavedModel:
     meta, arrays = read_model_file(path, expect_kind=MODEL_KIND)
     try:
         schema = Schema.from_dict(meta["schema"])
+        learner, scorer, task = _LEARNERS[meta.get("task", "classification")]
         encoder = Encoder.from_state(schema, meta["encoder"])
         tree_arrays = {k: v for k, v in arrays.items() if not k.startswith(_SCORE_PREFIX)}
-        model = TreeClassifier.from_state(meta["tree"], tree_arrays)
+        model = learner.from_state(meta["tree"], tree_arrays)
         score_state = dict(meta["score"])
         score_state.update({k[len(_SCORE_PREFIX):]: v for k, v in arrays.items()
                             if k.startswith(_SCORE_PREFIX)})
-        score = ClassificationScore.from_state(score_state)
+        score = scorer.from_state(score_state)
     except (KeyError, TypeError, ValueError) as exc:
         raise ModelFileError(f"{path!r} is not a usable sapwood model: {exc}") from exc
-    return SavedModel(schema, encoder, model, score, dict(meta.get("facts", {})))
+    return SavedModel(schema, encoder, task(model, score), dict(meta.get("facts", {})))

@@ -20,30 +20,43 @@ def score_sources(model_path: str, sources: list[str], fmt: str | None,
     """
     saved = load_model(model_path)
     warm_up()
-    encoder, model = saved.encoder, saved.model
+    encoder, task = saved.encoder, saved.task
     sink = _PredictionSink(predictions_path, sys.stdout)
     quarantine = _LazyQuarantine(quarantine_path or "sapwood-quarantine.jsonl")
-    scored_total = labelled = correct = 0
+    scored_total = labelled = 0
+    correct = 0.0
     source = open_sources(sources, fmt)
     try:
         for batch in source.batches():
             encoded = encoder.encode(batch, scoring=True)
-            quarantine.write(encoded.rejects)
+            quarantine.write(sorted(encoded.rejects, key=lambda r: (r.line, r.field or "")))
             if not len(encoded):
                 continue
-            scored = model.predict(encoded.X)
-            sink.write(encoded, model.classes_, scored, 0)
-            known = encoded.y >= 0
+            scored = task.predict(encoded.X)
+            sink.write(encoded, task.prediction_columns(scored, encoder))
+            known = task.labelled(encoded.y)
             labelled += int(known.sum())
-            correct += int((scored.pred[known] == encoded.y[known]).sum())
+            if known.any():
+                correct += task.correct(encoded.y[known], _subset(scored, known))
             scored_total += len(encoded)
     finally:
         source.close()
         sink.close()
         quarantine.close()
     report = f"sapwood: scored {scored_total:,} records"
-    if labelled:
+    if labelled and task.name == "classification":
         report += f"; {labelled:,} carried a label, accuracy {100 * correct / labelled:.1f}%"
+    elif labelled:
+        report += f"; {labelled:,} carried a target, mean absolute error " \
+                  f"{correct / labelled:.4g}"
     if quarantine.count:
         report += f"; {quarantine.count:,} quarantined in {quarantine.path}"
     return report
+
+
+def _subset(scored, mask):
+    """The scored records where ``mask`` holds (any Scored-like dataclass)."""
+    import dataclasses
+
+    return type(scored)(**{f.name: getattr(scored, f.name)[mask]
+                           for f in dataclasses.fields(scored)})

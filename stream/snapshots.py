@@ -17,6 +17,12 @@ file: the snapshot's JSON, then its text, then the index, each replaced atomical
 their files. A crash between steps leaves at worst a snapshot the index does not list; the
 next :meth:`SnapshotStore.write` (or :meth:`SnapshotStore.rebuild_index`) adopts it.
 Other files in the directory are left alone. One writer per directory: there is no lock.
+
+Retention keeps the newest ``keep`` snapshots; with ``history`` it also keeps a thinned
+record of older ones (:func:`thin_history`: the older a snapshot, the sparser), so a long
+run keeps its distant past in about ``keep / 2`` snapshots per doubling of its length.
+:class:`SnapshotSchedule` says when a run should take the next snapshot: every N records
+and/or every T seconds.
 """
 
 from __future__ import annotations
@@ -25,9 +31,10 @@ import json
 import math
 import os
 import re
+import time
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 from .atomic import write_atomic
 from .errors import ConfigError, ModelFileError
@@ -51,6 +58,8 @@ class SnapshotStore:
         Where the snapshots live; created on the first write.
     keep
         Keep only the newest ``keep`` snapshots (None keeps all).
+    history
+        With ``keep``: also keep older snapshots, thinned (see :func:`thin_history`).
 
     Examples
     --------
@@ -64,9 +73,14 @@ class SnapshotStore:
     >>> scratch.cleanup()
     """
 
-    def __init__(self, directory: str | os.PathLike, keep: int | None = None) -> None:
+    def __init__(self, directory: str | os.PathLike, keep: int | None = None,
+                 history: bool = False) -> None:
         self.directory = Path(directory)
         self.keep = None if keep is None else require_int("snapshot retention (keep)", keep, 1)
+        if history and self.keep is None:
+            raise ConfigError("a thinned snapshot history needs a number of snapshots to "
+                              "keep, got none")
+        self.history = bool(history)
 
     def write(self, records: int, payload: dict, text: str, when: float) -> dict:
         """Write the next snapshot and return its index entry.
@@ -99,7 +113,12 @@ class SnapshotStore:
         entries.append(entry)
         expired: list[dict] = []
         if self.keep is not None and len(entries) > self.keep:
-            expired, entries = entries[:-self.keep], entries[-self.keep:]
+            if self.history:
+                kept = set(thin_history([e["sequence"] for e in entries], self.keep))
+                expired = [e for e in entries if e["sequence"] not in kept]
+                entries = [e for e in entries if e["sequence"] in kept]
+            else:
+                expired, entries = entries[:-self.keep], entries[-self.keep:]
         self._write_index(entries)
         # Only after the index stops naming them, so index readers never meet a gap.
         for old in expired:
@@ -244,6 +263,81 @@ class SnapshotStore:
     def _missing(self, sequence: int) -> ModelFileError:
         return ModelFileError(f"snapshot {sequence} is not in {str(self.directory)!r} "
                               f"(never written, or removed by retention)")
+
+
+def thin_history(sequences: list[int], keep: int) -> list[int]:
+    """The sequences a thinned history keeps, oldest first.
+
+    The newest ``keep`` stay. An older snapshot of age ``a`` (snapshots written after it)
+    stays if its sequence is a multiple of ``2 ** (floor(log2(a // keep)) + 1)``: every
+    2nd for ages ``keep..2*keep-1``, every 4th up to ``4*keep-1``, and so on. The spacing
+    only grows with age and each spacing divides the next, so a snapshot dropped once
+    would be dropped by every later write too: thinning never needs a file it deleted.
+
+    >>> thin_history(list(range(1, 21)), 4)
+    [8, 12, 14, 16, 17, 18, 19, 20]
+    """
+    keep = require_int("snapshot retention (keep)", keep, 1)
+    if not sequences:
+        return []
+    newest = max(sequences)
+    kept = []
+    for sequence in sorted(sequences):
+        age = newest - sequence
+        if age < keep or sequence % (2 ** ((age // keep).bit_length())) == 0:
+            kept.append(sequence)
+    return kept
+
+
+class SnapshotSchedule:
+    """When a run takes its next snapshot: every ``every_records`` records and/or every
+    ``every_seconds`` seconds (0 turns either off).
+
+    Record-based snapshots fall on exact multiples of ``every_records`` (the engine cuts
+    batches there); time-based ones are checked where the run stops between batches, so
+    they land on the first batch boundary after the interval has passed.
+
+    Parameters
+    ----------
+    every_records, every_seconds
+        Intervals; at least one must be set.
+    clock
+        Seconds from any fixed origin (``time.monotonic`` by default; tests pass a fake).
+    """
+
+    def __init__(self, every_records: int = 0, every_seconds: float = 0.0,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        self.every_records = require_int("snapshot interval", every_records, 0)
+        if isinstance(every_seconds, bool) or not isinstance(every_seconds, (int, float)) \
+                or not math.isfinite(every_seconds) or every_seconds < 0:
+            raise ConfigError(f"snapshot time interval must be a number of seconds >= 0, "
+                              f"got {every_seconds!r}")
+        if not self.every_records and not every_seconds:
+            raise ConfigError("a snapshot schedule needs a record interval or a time "
+                              "interval, got neither")
+        self.every_seconds = float(every_seconds)
+        self.clock = clock
+        self.last_records = 0
+        self.last_time = clock()
+
+    def records_to_boundary(self, records: int) -> int | None:
+        """Records until the next record-based snapshot (None without a record interval)."""
+        if not self.every_records:
+            return None
+        return self.every_records - records % self.every_records
+
+    def due(self, records: int) -> bool:
+        """True when a snapshot should be taken now, at ``records`` records seen."""
+        if records == self.last_records:
+            return False
+        if self.every_records and records % self.every_records == 0:
+            return True
+        return bool(self.every_seconds) and self.clock() - self.last_time >= self.every_seconds
+
+    def taken(self, records: int) -> None:
+        """Record that a snapshot was just taken at ``records`` records."""
+        self.last_records = records
+        self.last_time = self.clock()
 
 
 def _json_name(sequence: int) -> str:

@@ -1,0 +1,110 @@
+"""Settings of the Hoeffding regression tree: one frozen dataclass, validated once.
+
+The regressor shares the Hoeffding bound, grace period, tie threshold and memory budget
+with the classifier (published defaults: grace period 200, delta 1e-7, tie threshold
+0.05; Domingos & Hulten, KDD 2000), but its split criteria, leaf models and numeric
+observer differ, so it has its own settings and registries rather than overloading
+:class:`stream.settings.TreeSettings`.
+
+Registries map names to kernel ids; the CLI takes its choices from them.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+from .errors import ConfigError
+from .settings import require_choice, require_float, require_int
+
+REGRESSION_CRITERIA = {"variance": 0, "deviation": 1}
+"""Split merits by name -> kernel id. ``variance``: variance reduction (as river's
+regression trees); ``deviation``: standard deviation reduction (Ikonomovska et al., 2011,
+FIMT-DD). Both are compared as the ratio second best / best, whose range is 1."""
+
+REGRESSION_LEAF_MODELS = {"mean": 0, "linear": 1, "adaptive": 2}
+"""Leaf predictors by name -> kernel id. ``mean``: the leaf's target mean; ``linear``: an
+online linear model on standardised inputs (FIMT-DD's perceptron leaves); ``adaptive``:
+per leaf, whichever of the two has the lower faded squared error."""
+
+REGRESSION_OBSERVERS = {"quantile": 0}
+"""Numeric split observers by name -> kernel id. ``quantile``: per leaf and feature,
+bins with edges at quantiles of the first values the leaf sees, holding the exact
+target count, mean and variance per bin (bounded memory; see
+:mod:`stream.regression_observers`)."""
+
+
+@dataclasses.dataclass(frozen=True)
+class RegressionSettings:
+    """How the regression tree grows and predicts.
+
+    Parameters
+    ----------
+    criterion
+        Split merit: ``variance`` or ``deviation`` reduction.
+    grace_period
+        Records a leaf sees between split attempts (n_min).
+    delta
+        One minus the confidence of the Hoeffding bound.
+    tie_threshold
+        Split anyway when the bound has shrunk below this (tau).
+    leaf_model
+        ``mean``, ``linear`` or ``adaptive``.
+    numeric_observer
+        ``quantile`` (the only one so far).
+    bins
+        Bins per leaf and numeric feature; bins - 1 candidate thresholds.
+    min_branch_records
+        A candidate split needs at least this many records on each branch.
+    binary_categories
+        Split categories as ``x == v`` / ``x != v`` only, never one branch per value.
+    max_depth
+        Depth at which leaves stop growing; ``None`` for no limit.
+    memory_mb
+        Budget for the observers of active leaves; beyond it the leaves with the
+        smallest remaining squared error are deactivated (they keep predicting).
+    learning_rate
+        Step of the linear leaves' normalised least-mean-squares update, in (0, 2).
+    selector_decay
+        Fading factor of the squared errors the adaptive leaves compare, in (0, 1].
+    """
+
+    criterion: str = "variance"
+    grace_period: int = 200
+    delta: float = 1e-7
+    tie_threshold: float = 0.05
+    leaf_model: str = "adaptive"
+    numeric_observer: str = "quantile"
+    bins: int = 32
+    min_branch_records: int = 5
+    binary_categories: bool = False
+    max_depth: int | None = None
+    memory_mb: float = 256.0
+    learning_rate: float = 0.05
+    selector_decay: float = 0.95
+
+    def __post_init__(self) -> None:
+        require_choice("criterion", self.criterion, REGRESSION_CRITERIA)
+        require_int("grace period", self.grace_period, 1)
+        require_float("delta", self.delta, 0.0, 1.0)
+        require_float("tie threshold", self.tie_threshold, 0.0, math.inf, low_open=False)
+        require_choice("leaf model", self.leaf_model, REGRESSION_LEAF_MODELS)
+        require_choice("numeric observer", self.numeric_observer, REGRESSION_OBSERVERS)
+        require_int("bins", self.bins, 2)
+        require_int("min branch records", self.min_branch_records, 1)
+        if self.max_depth is not None:
+            require_int("max depth", self.max_depth, 1)
+        require_float("memory budget (MB)", self.memory_mb, 0.0, math.inf)
+        require_float("learning rate", self.learning_rate, 0.0, 2.0)
+        require_float("selector decay", self.selector_decay, 0.0, 1.0, high_open=False)
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "RegressionSettings":
+        known = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(data) - known)
+        if unknown:
+            raise ConfigError(f"unknown setting {unknown[0]!r}; known: {', '.join(sorted(known))}")
+        return cls(**data)

@@ -1,0 +1,304 @@
+"""The regression tree's state as a few typed tables, and how they are allocated and grown.
+
+The written-down interface of the regressor's compiled core, built like the classifier's
+(:mod:`stream.tables`): all state lives in the :class:`RegressorTables` named tuple;
+kernels update it in place and never allocate state; when a table is full a kernel
+returns to Python, which enlarges it (:func:`grow`) and calls again from the same record.
+
+The routing columns (``node_i`` columns 0-7, ``node_f`` columns THRESHOLD and WEIGHT)
+have the positions and meanings of the classifier's, so code that reads paths off the
+tables can serve either tree. The constants are defined here, not imported, so the two
+trees' tables can evolve apart.
+
+Nodes (capacity N; ids 0..n_nodes-1; the root is 0)
+    node_i  int64[N, 8]  KIND (0 leaf, 1 numeric ``x <= threshold`` -> child 0,
+                         2 category multiway -> child_table[start + code], 3 category
+                         ``x == code`` -> child 0), FEATURE (-1 at leaves), CHILD_START,
+                         N_CHILDREN, PARENT, DEPTH, CREATED (records learned at creation),
+                         SLOT (row of leaf observers, -1 when inactive or a branch)
+    node_f  f8[N, 13]    THRESHOLD, WEIGHT (weight that reached the node; missing values
+                         follow the heaviest child), LAST_ATTEMPT (OBSERVED at the last
+                         split attempt), Y_N, Y_MEAN, Y_M2 (target count, mean and
+                         Welford sum of squares: live at leaves, as at the split for
+                         branches), ERR_MEAN, ERR_LINEAR (faded squared errors of the
+                         mean and the linear model), MERIT (of the chosen split), SCORED,
+                         ABS_ERROR, SQ_ERROR (records the leaf scored since it was
+                         created, and the sum of their absolute and squared errors),
+                         OBSERVED (records the leaf's observers hold: the n of the
+                         Hoeffding bound)
+    lin     f8[N, Fn+1]  linear model per node on standardised inputs: a weight per
+                         numeric feature, then the intercept (branches keep theirs as at
+                         the split; children start from it)
+    lin_x   f8[N, Fn, 3] count, mean and Welford M2 of each numeric input among the
+                         records the node learned since it was created: the leaf-local
+                         scaling of the linear model's update steps
+    child_table int64[M] child ids per branch block (-1: no branch for that code yet)
+
+Standardisation (tree-wide, as FIMT-DD's perceptrons use)
+    scale   f8[Fn+1, 5]  per numeric feature, then the target: SC_N, SC_MEAN, SC_M2
+                         (Welford), SC_SD (sample standard deviation) and SC_INV (1 / SC_SD;
+                         both 0 while undefined)
+
+Leaf observers (capacity S slots; only active leaves hold one)
+    q_edges f8[S, Fn, B-1]     bin edges, set from the first W values the leaf saw
+    q_stats f8[S, Fn, B, 3]    target count, mean, Welford M2 per bin
+    q_buf   f8[S, Fn, W, 2]    (value, target) buffered until the edges are set
+    q_meta  int64[S, Fn, 3]    Q_READY, Q_NEDGES, Q_NBUF; all zero for a fresh slot
+    c_stats f8[S, Fc, K, 3]    target count, mean, Welford M2 per category code
+    free_slots int64[S]        stack of free slot ids
+
+Other
+    state   int64[16]  counters, indices S_* below (the same positions as the
+                       classifier's counters of the same names)
+    cfg_i, cfg_f       settings, indices RC_* and RF_* below
+    fmap    int64[F, 3]  per feature: FM_KIND (0 numeric, 1 category), FM_LOCAL (index
+                         among features of that kind), FM_SEEN (1 + highest code learned)
+"""
+
+from __future__ import annotations
+
+import collections
+
+import numpy as np
+
+from .errors import ModelFileError
+from .regression_settings import (REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS,
+                                  REGRESSION_OBSERVERS, RegressionSettings)
+
+# node_i columns: the same positions and meanings as the classifier's first eight
+KIND, FEATURE, CHILD_START, N_CHILDREN, PARENT, DEPTH, CREATED, SLOT = range(8)
+NODE_I_COLS = 8
+# node kinds, as in stream.tables
+LEAF, NUMERIC, MULTIWAY, EQUALS = 0, 1, 2, 3
+# fmap columns, as in stream.tables
+FM_KIND, FM_LOCAL, FM_SEEN = range(3)
+
+# state indices
+S_NODES = 0          # nodes in use
+S_FREE_TOP = 1       # free slots on the stack
+S_CHILD_USED = 2     # entries of child_table in use
+S_ACTIVE = 3         # active leaves
+S_LEARNED = 4        # records learned
+S_CATS_SEEN = 6      # 1 + highest category code learned so far (any categorical feature)
+S_SPLITS = 7         # splits made
+S_DEACTIVATED = 9    # leaves deactivated for the memory budget
+S_LEAVES = 10        # leaves, active or not
+STATE_SIZE = 16
+
+# node_f columns (THRESHOLD and WEIGHT as in stream.tables)
+THRESHOLD, WEIGHT, LAST_ATTEMPT, Y_N, Y_MEAN, Y_M2, ERR_MEAN, ERR_LINEAR, MERIT, SCORED, \
+    ABS_ERROR, SQ_ERROR, OBSERVED = range(13)
+NODE_F_COLS = 13
+# scale columns
+SC_N, SC_MEAN, SC_M2, SC_SD, SC_INV = range(5)
+SCALE_COLS = 5
+# q_meta last axis
+Q_READY, Q_NEDGES, Q_NBUF = range(3)
+# per-bin / per-code statistics last axis
+ST_N, ST_MEAN, ST_M2 = range(3)
+
+# cfg_i indices
+RC_CRITERION, RC_GRACE, RC_LEAF_MODEL, RC_OBSERVER, RC_BINS, RC_MIN_BRANCH, \
+    RC_BINARY_CATS, RC_MAX_DEPTH, RC_BUFFER = range(9)
+CFG_I_SIZE = 12
+# cfg_f indices
+RF_DELTA, RF_TAU, RF_MEMORY_BYTES, RF_RATE, RF_DECAY = range(5)
+CFG_F_SIZE = 8
+
+FIELDS = ("node_i", "node_f", "lin", "lin_x", "child_table", "scale", "q_edges", "q_stats", "q_buf",
+          "q_meta", "c_stats", "free_slots", "state", "cfg_i", "cfg_f", "fmap")
+SLOT_TABLES = ("q_edges", "q_stats", "q_buf", "q_meta", "c_stats")
+
+RegressorTables = collections.namedtuple("RegressorTables", FIELDS)
+
+
+def config_arrays(settings: RegressionSettings) -> tuple[np.ndarray, np.ndarray]:
+    """Encode settings into the kernels' integer and float configuration vectors."""
+    cfg_i = np.zeros(CFG_I_SIZE, np.int64)
+    cfg_f = np.zeros(CFG_F_SIZE, np.float64)
+    cfg_i[RC_CRITERION] = REGRESSION_CRITERIA[settings.criterion]
+    cfg_i[RC_GRACE] = settings.grace_period
+    cfg_i[RC_LEAF_MODEL] = REGRESSION_LEAF_MODELS[settings.leaf_model]
+    cfg_i[RC_OBSERVER] = REGRESSION_OBSERVERS[settings.numeric_observer]
+    cfg_i[RC_BINS] = settings.bins
+    cfg_i[RC_MIN_BRANCH] = settings.min_branch_records
+    cfg_i[RC_BINARY_CATS] = int(settings.binary_categories)
+    cfg_i[RC_MAX_DEPTH] = settings.max_depth if settings.max_depth is not None else 1 << 30
+    cfg_i[RC_BUFFER] = 4 * settings.bins
+    cfg_f[RF_DELTA] = settings.delta
+    cfg_f[RF_TAU] = settings.tie_threshold
+    cfg_f[RF_MEMORY_BYTES] = settings.memory_mb * 2.0 ** 20
+    cfg_f[RF_RATE] = settings.learning_rate
+    cfg_f[RF_DECAY] = settings.selector_decay
+    return cfg_i, cfg_f
+
+
+def _slot_shapes(slots: int, n_numeric: int, n_cat: int, cats: int, bins: int,
+                 buffer: int) -> dict:
+    return {"q_edges": (slots, n_numeric, bins - 1),
+            "q_stats": (slots, n_numeric, bins, 3),
+            "q_buf": (slots, n_numeric, buffer, 2),
+            "q_meta": (slots, n_numeric, 3),
+            "c_stats": (slots, n_cat, cats, 3)}
+
+
+def allocate(settings: RegressionSettings, feature_kinds: list[str], cats: int = 4,
+             nodes: int = 64, slots: int = 32) -> RegressorTables:
+    """Empty tables holding a single active root leaf (node 0)."""
+    fmap = np.zeros((len(feature_kinds), 3), np.int64)
+    counters = [0, 0]
+    for f, name in enumerate(feature_kinds):
+        kind = 0 if name == "numeric" else 1
+        fmap[f, FM_KIND] = kind
+        fmap[f, FM_LOCAL] = counters[kind]
+        counters[kind] += 1
+    cfg_i, cfg_f = config_arrays(settings)
+    shapes = _slot_shapes(slots, counters[0], counters[1], cats, settings.bins,
+                          int(cfg_i[RC_BUFFER]))
+    arrays = {name: np.zeros(shape, np.int64 if name == "q_meta" else np.float64)
+              for name, shape in shapes.items()}
+    arrays.update(
+        node_i=np.zeros((nodes, NODE_I_COLS), np.int64),
+        node_f=np.zeros((nodes, NODE_F_COLS), np.float64),
+        lin=np.zeros((nodes, counters[0] + 1), np.float64),
+        lin_x=np.zeros((nodes, counters[0], 3), np.float64),
+        child_table=np.full(max(4 * nodes, 16), -1, np.int64),
+        scale=np.zeros((counters[0] + 1, SCALE_COLS), np.float64),
+        free_slots=np.arange(slots - 1, -1, -1, dtype=np.int64),
+        state=np.zeros(STATE_SIZE, np.int64), cfg_i=cfg_i, cfg_f=cfg_f, fmap=fmap)
+    t = RegressorTables(**arrays)
+    t.state[S_NODES] = 1
+    t.state[S_LEAVES] = 1
+    t.node_i[0, FEATURE] = -1
+    t.node_i[0, PARENT] = -1
+    t.state[S_FREE_TOP] = slots - 1
+    t.state[S_ACTIVE] = 1
+    t.node_i[0, SLOT] = t.free_slots[slots - 1]
+    return t
+
+
+def capacities(t: RegressorTables) -> dict:
+    """Current capacities: nodes, slots, category codes, child-table entries."""
+    return {"nodes": t.node_i.shape[0], "slots": t.free_slots.shape[0],
+            "cats": t.c_stats.shape[2], "children": t.child_table.shape[0]}
+
+
+def _resized(arr: np.ndarray, shape: tuple, fill=0) -> np.ndarray:
+    out = np.full(shape, fill, arr.dtype)
+    common = tuple(slice(0, min(a, b)) for a, b in zip(arr.shape, shape))
+    out[common] = arr[common]
+    return out
+
+
+def grow(t: RegressorTables, nodes: int = 0, slots: int = 0, cats: int = 0,
+         children: int = 0) -> RegressorTables:
+    """Return tables with at least the given capacities (0 = keep), contents preserved.
+
+    Growing the category capacity also re-lays the child table: every multiway branch
+    owns a block with one entry per possible category code.
+    """
+    cap = capacities(t)
+    asked = {"nodes": nodes, "slots": slots, "cats": cats, "children": children}
+    new = {k: max(v, asked[k]) for k, v in cap.items()}
+    arrays = t._asdict()
+    arrays["state"] = t.state.copy()
+    if new["nodes"] != cap["nodes"]:
+        arrays["node_i"] = _resized(t.node_i, (new["nodes"], NODE_I_COLS))
+        arrays["node_f"] = _resized(t.node_f, (new["nodes"], NODE_F_COLS))
+        arrays["lin"] = _resized(t.lin, (new["nodes"], t.lin.shape[1]))
+        arrays["lin_x"] = _resized(t.lin_x, (new["nodes"],) + t.lin_x.shape[1:])
+    if new["slots"] != cap["slots"] or new["cats"] != cap["cats"]:
+        for name in SLOT_TABLES:
+            shape = list(arrays[name].shape)
+            shape[0] = new["slots"]
+            if name == "c_stats":
+                shape[2] = new["cats"]
+            arrays[name] = _resized(arrays[name], tuple(shape))
+    if new["slots"] != cap["slots"]:
+        # new slots go under the free stack, so the order of reuse stays the same
+        top = int(t.state[S_FREE_TOP])
+        extra = np.arange(new["slots"] - 1, cap["slots"] - 1, -1, dtype=np.int64)
+        free = np.empty(new["slots"], np.int64)
+        free[:len(extra)] = extra
+        free[len(extra):len(extra) + top] = t.free_slots[:top]
+        arrays["free_slots"] = free
+        arrays["state"][S_FREE_TOP] = top + len(extra)
+    if new["cats"] != cap["cats"]:
+        arrays["child_table"], arrays["node_i"], used = _relay_children(
+            arrays["child_table"], arrays["node_i"], int(t.state[S_NODES]), new["cats"],
+            new["children"])
+        arrays["state"][S_CHILD_USED] = used
+    elif new["children"] != cap["children"]:
+        arrays["child_table"] = _resized(t.child_table, (new["children"],), -1)
+    return RegressorTables(**arrays)
+
+
+def _relay_children(table: np.ndarray, node_i: np.ndarray, n_nodes: int, cats: int,
+                    capacity: int):
+    """Copy the child blocks into a new table where multiway blocks are ``cats`` wide."""
+    node_i = node_i.copy()
+    kinds = node_i[:n_nodes, KIND]
+    need = int(np.where(kinds == MULTIWAY, cats, np.where(kinds == LEAF, 0, 2)).sum())
+    out = np.full(max(capacity, 2 * need + 16), -1, np.int64)
+    used = 0
+    for n in range(n_nodes):
+        kind = node_i[n, KIND]
+        if kind == LEAF:
+            continue
+        width = cats if kind == MULTIWAY else 2
+        start, count = node_i[n, CHILD_START], node_i[n, N_CHILDREN]
+        out[used:used + count] = table[start:start + count]
+        node_i[n, CHILD_START] = used
+        node_i[n, N_CHILDREN] = width
+        used += width
+    return out, node_i, used
+
+
+def check_tables(t: RegressorTables, settings: RegressionSettings,
+                 feature_kinds: list[str]) -> RegressorTables:
+    """``t`` if its tables fit together and fit ``settings`` and ``feature_kinds``;
+    otherwise :class:`ModelFileError` naming the first table that does not. The kernels
+    index without bounds checks, so a damaged file must be refused here."""
+    fresh = allocate(settings, feature_kinds, cats=1, nodes=1, slots=1)
+    for name in FIELDS:
+        a, ref = getattr(t, name), getattr(fresh, name)
+        if not isinstance(a, np.ndarray) or a.dtype != ref.dtype or a.ndim != ref.ndim:
+            raise ModelFileError(f"saved tree: table {name!r} has the wrong type or rank")
+    if t.cfg_i.shape != fresh.cfg_i.shape or t.cfg_f.shape != fresh.cfg_f.shape \
+            or t.state.shape != fresh.state.shape:
+        raise ModelFileError("saved tree: settings or counters have the wrong length")
+    if not (np.array_equal(t.cfg_i, fresh.cfg_i) and np.array_equal(t.cfg_f, fresh.cfg_f)):
+        raise ModelFileError("saved tree: its tables were built with other settings")
+    if not np.array_equal(t.fmap[:, :2], fresh.fmap[:, :2]) or t.fmap.shape != fresh.fmap.shape:
+        raise ModelFileError("saved tree: its tables were built for other features")
+    nodes, slots, cats = t.node_i.shape[0], t.free_slots.shape[0], t.c_stats.shape[2]
+    expected = {"node_i": (nodes, NODE_I_COLS), "node_f": (nodes, NODE_F_COLS),
+                "lin": (nodes,) + fresh.lin.shape[1:], "lin_x": (nodes,) + fresh.lin_x.shape[1:],
+                "scale": fresh.scale.shape, "free_slots": (slots,)}
+    for name, shape in _slot_shapes(slots, fresh.q_stats.shape[1], fresh.c_stats.shape[1], cats,
+                                    settings.bins, int(fresh.cfg_i[RC_BUFFER])).items():
+        expected[name] = shape
+    for name, shape in expected.items():
+        if getattr(t, name).shape != shape:
+            raise ModelFileError(f"saved tree: table {name!r} has shape "
+                                 f"{getattr(t, name).shape}, expected {shape}")
+    n_nodes, top = int(t.state[S_NODES]), int(t.state[S_FREE_TOP])
+    used = int(t.state[S_CHILD_USED])
+    if not (1 <= n_nodes <= nodes and 0 <= top <= slots
+            and 0 <= used <= t.child_table.shape[0]):
+        raise ModelFileError("saved tree: its counters do not fit its tables")
+    node_i = t.node_i[:n_nodes]
+    children = t.child_table[:used]
+    bad = ((node_i[:, KIND] < LEAF) | (node_i[:, KIND] > EQUALS)).any() \
+        or (node_i[:, SLOT] >= slots).any() or (node_i[:, PARENT] >= n_nodes).any() \
+        or (node_i[:, FEATURE] >= len(feature_kinds)).any() \
+        or (children >= n_nodes).any() or (t.free_slots[:top] >= slots).any() \
+        or (t.free_slots[:top] < 0).any() or (t.q_meta[:, :, Q_NEDGES] >= settings.bins).any() \
+        or (t.q_meta[:, :, Q_NBUF] > int(fresh.cfg_i[RC_BUFFER])).any() \
+        or (t.q_meta < 0).any()
+    branches = node_i[node_i[:, KIND] != LEAF]
+    bad = bad or (branches[:, FEATURE] < 0).any() or (branches[:, CHILD_START] < 0).any() \
+        or (branches[:, CHILD_START] + branches[:, N_CHILDREN] > used).any()
+    if bad:
+        raise ModelFileError("saved tree: its node or slot tables are inconsistent")
+    return RegressorTables(**{f: np.ascontiguousarray(getattr(t, f)) for f in FIELDS})

@@ -1,0 +1,209 @@
+"""TreeRegressor: the Python face of the compiled Hoeffding regression tree.
+
+>>> import numpy as np
+>>> from stream.regressor import RegressionSettings, TreeRegressor
+>>> X = np.array([[0.1], [0.9], [0.2], [0.8]])
+>>> y = np.array([1.0, 3.0, 1.0, 3.0])
+>>> model = TreeRegressor(["pressure"], ["numeric"], RegressionSettings(leaf_model="mean"))
+>>> scored = model.learn(X, y)
+>>> scored.pred.tolist()          # each record is scored before it is learned
+[0.0, 1.0, 2.0, 1.6666666666666667]
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from .errors import ConfigError, ModelFileError
+from .regression_settings import RegressionSettings
+from .regression_tables import (DEPTH, S_ACTIVE, S_CHILD_USED, S_DEACTIVATED, S_LEARNED,
+                                S_LEAVES, S_NODES, S_SPLITS, RegressorTables, allocate,
+                                capacities, check_tables, grow)
+from .regressor_kernel import has_room, leaf_cap, learn_batch, predict_batch
+
+
+@dataclasses.dataclass
+class ScoredValues:
+    """Per-record output of scoring: the predicted value and the node id of the leaf
+    that predicted it."""
+
+    pred: np.ndarray
+    leaf: np.ndarray
+
+
+class TreeRegressor:
+    """An incremental Hoeffding regression tree over numeric and categorical features.
+
+    Parameters
+    ----------
+    feature_names
+        Names of the columns of ``X``.
+    feature_kinds
+        ``"numeric"`` or ``"category"`` per column; category values arrive as integer
+        codes (0, 1, 2, ...) stored as floats. NaN is a missing value everywhere.
+    settings
+        How the tree grows; :class:`stream.regression_settings.RegressionSettings`
+        defaults if omitted.
+    """
+
+    def __init__(self, feature_names: list[str], feature_kinds: list[str],
+                 settings: RegressionSettings | None = None) -> None:
+        if len(feature_names) != len(feature_kinds):
+            raise ConfigError("feature names and kinds must have the same length, got "
+                              f"{len(feature_names)} and {len(feature_kinds)}")
+        bad = [k for k in feature_kinds if k not in ("numeric", "category")]
+        if bad:
+            raise ConfigError(f"feature kind must be 'numeric' or 'category', got {bad[0]!r}")
+        if not feature_names:
+            raise ConfigError("a tree needs at least one feature, got none")
+        self.settings = settings or RegressionSettings()
+        self.feature_names = list(feature_names)
+        self.feature_kinds = list(feature_kinds)
+        self.tables_: RegressorTables = allocate(self.settings, self.feature_kinds)
+        self._category_columns = np.array(
+            [j for j, k in enumerate(self.feature_kinds) if k == "category"], np.int64)
+
+    # ------------------------------------------------------------------ learning
+    def learn(self, X: np.ndarray, y: np.ndarray) -> ScoredValues:
+        """Score each row of ``X`` with the current tree, then learn it with target ``y``
+        (finite floats)."""
+        X = self._check_X(X)
+        y = np.ascontiguousarray(y, dtype=np.float64)
+        if y.ndim != 1 or y.shape[0] != X.shape[0]:
+            raise ConfigError(f"y must have {X.shape[0]} values, got shape {y.shape}")
+        bad = np.flatnonzero(~np.isfinite(y))
+        if bad.size:
+            raise ConfigError(f"target values must be finite numbers, got {float(y[bad[0]])!r} "
+                              f"at row {int(bad[0])}")
+        self._fit_categories(X)
+        n = X.shape[0]
+        scored = ScoredValues(np.empty(n), np.empty(n, np.int32))
+        done = 0
+        while True:
+            done = learn_batch(self.tables_, X, y, done, scored.pred, scored.leaf)
+            if done >= n:
+                return scored
+            self._make_room()
+
+    def predict(self, X: np.ndarray) -> ScoredValues:
+        """Score rows of ``X`` without learning."""
+        X = self._check_X(X)
+        n = X.shape[0]
+        scored = ScoredValues(np.empty(n), np.empty(n, np.int32))
+        predict_batch(self.tables_, X, scored.pred, scored.leaf)
+        return scored
+
+    def _check_X(self, X: np.ndarray) -> np.ndarray:
+        X = np.ascontiguousarray(X, dtype=np.float64)
+        if X.ndim != 2 or X.shape[1] != len(self.feature_names):
+            raise ConfigError(f"X must have {len(self.feature_names)} columns, got shape "
+                              f"{X.shape}")
+        infinite = np.isinf(X)
+        if infinite.any():
+            row, col = np.argwhere(infinite)[0]
+            raise ConfigError(f"values must be finite numbers or NaN (missing), got "
+                              f"{float(X[row, col])!r} in field {self.feature_names[col]!r} at row "
+                              f"{int(row)}")
+        if self._category_columns.size:
+            codes = X[:, self._category_columns]
+            bad = ~np.isnan(codes) & ((codes < 0) | (codes != np.floor(codes)))
+            if bad.any():
+                row, col = np.argwhere(bad)[0]
+                name = self.feature_names[self._category_columns[col]]
+                raise ConfigError(f"category codes must be whole numbers >= 0, got "
+                                  f"{float(codes[row, col])!r} in field {name!r} at row {int(row)}")
+        return X
+
+    # ------------------------------------------------------------------ capacity
+    def _fit_categories(self, X: np.ndarray) -> None:
+        if not self._category_columns.size or not X.shape[0]:
+            return
+        codes = X[:, self._category_columns]
+        if np.isnan(codes).all():
+            return
+        highest = int(np.nanmax(codes))
+        capacity = capacities(self.tables_)["cats"]
+        if highest >= capacity:
+            self.tables_ = grow(self.tables_, cats=max(highest + 1, 2 * capacity))
+
+    def _make_room(self) -> None:
+        t = self.tables_
+        cap = capacities(t)
+        width = max(2, cap["cats"])
+        leaves = int(t.state[S_LEAVES])
+        need_slots = min(leaves, leaf_cap(t)) + width + 1
+        self.tables_ = grow(
+            t,
+            nodes=2 * cap["nodes"] + width if cap["nodes"] - t.state[S_NODES] <= width + 1 else 0,
+            slots=max(2 * cap["slots"], need_slots) if cap["slots"] < need_slots else 0,
+            children=(2 * cap["children"] + width
+                      if cap["children"] - t.state[S_CHILD_USED] <= width else 0),
+        )
+        if not has_room(self.tables_):  # pragma: no cover - a bug, not a data condition
+            raise RuntimeError("tables did not grow enough")
+
+    # ------------------------------------------------------------------ state
+    def state(self) -> tuple[dict, dict[str, np.ndarray]]:
+        """Everything needed to resume: JSON-able meta and copies of the tables (no
+        pickle)."""
+        meta = {"kind": "regressor", "settings": self.settings.to_dict(),
+                "feature_names": self.feature_names, "feature_kinds": self.feature_kinds}
+        return meta, {name: np.array(a) for name, a in self.tables_._asdict().items()}
+
+    @classmethod
+    def from_state(cls, meta: dict, arrays: dict[str, np.ndarray]) -> "TreeRegressor":
+        """Rebuild a regressor saved by :meth:`state`."""
+        if meta.get("kind", "regressor") != "regressor":
+            raise ConfigError(f"saved tree is a {meta.get('kind')!r}, not a regressor")
+        model = cls(meta["feature_names"], meta["feature_kinds"],
+                    RegressionSettings.from_dict(meta["settings"]))
+        missing = [f for f in RegressorTables._fields if f not in arrays]
+        if missing:
+            raise ModelFileError(f"saved tree lacks table {missing[0]!r}")
+        # copies: the kernels write in place and trust the tables' shapes
+        tables = RegressorTables(**{f: np.array(arrays[f], copy=True)
+                                    for f in RegressorTables._fields})
+        model.tables_ = check_tables(tables, model.settings, model.feature_kinds)
+        return model
+
+    # ------------------------------------------------------------------ introspection
+    @property
+    def n_nodes(self) -> int:
+        return int(self.tables_.state[S_NODES])
+
+    @property
+    def n_leaves(self) -> int:
+        return int(self.tables_.state[S_LEAVES])
+
+    @property
+    def n_active_leaves(self) -> int:
+        return int(self.tables_.state[S_ACTIVE])
+
+    @property
+    def depth(self) -> int:
+        """Edges on the longest root-to-leaf path (0 for a lone root)."""
+        return int(self.tables_.node_i[:self.n_nodes, DEPTH].max())
+
+    @property
+    def records_learned(self) -> int:
+        return int(self.tables_.state[S_LEARNED])
+
+    def counters(self) -> dict:
+        """Growth counters: splits and leaves deactivated for the memory budget."""
+        s = self.tables_.state
+        return {"splits": int(s[S_SPLITS]), "deactivated": int(s[S_DEACTIVATED])}
+
+
+def warm_up() -> None:
+    """Load (or, the first time, compile) the regression kernels: every leaf model,
+    numeric and categorical features, missing values, a split and a new category."""
+    X = np.array([[0.5, 0.0], [0.25, 1.0], [np.nan, 1.0], [0.75, np.nan], [0.1, 2.0]])
+    y = np.array([1.0, 2.0, 1.5, 0.5, 3.0])
+    for leaf_model in ("mean", "linear", "adaptive"):
+        model = TreeRegressor(["a", "b"], ["numeric", "category"],
+                              RegressionSettings(leaf_model=leaf_model, grace_period=1,
+                                                 min_branch_records=1))
+        model.learn(X, y)
+        model.predict(X)
