@@ -65,6 +65,7 @@ _UNITS: dict[str, Callable[[float], str]] = {
     "pt": lambda v: f"{100 * v:.4f} pt",
     "%": lambda v: f"{100 * v:.3f}%",
     "MB": lambda v: f"{v:,.1f} MB",
+    "rmse": lambda v: f"{v:.4f}",
 }
 
 
@@ -247,18 +248,25 @@ models), and sapwood's default accuracy >= river's default."""
 
 @dataclasses.dataclass(frozen=True)
 class Pairing:
-    """A sapwood leaf model and the river ``leaf_prediction`` it is compared with."""
+    """A sapwood leaf model and drift detector, and the river ``leaf_prediction`` of the
+    HoeffdingTreeClassifier it is compared with."""
 
     sapwood: str
     river: str
     targets: bool
+    detector: str = "off"
 
 
 PAIRINGS: dict[str, Pairing] = {
-    "defaults": Pairing("adaptive", "nba", True),
-    "majority": Pairing("majority", "mc", False),
+    "defaults": Pairing("adaptive", "nba", True, "off"),
+    "majority": Pairing("majority", "mc", False, "off"),
+    "with-drift": Pairing("adaptive", "nba", False, "adwin"),
 }
-"""Leaf-model pairings; only the defaults carry the targets."""
+"""Pairings against river's plain Hoeffding tree. The targets sit on the default leaf
+models of both with drift watching off on sapwood's side (river's
+HoeffdingTreeClassifier has none): the same algorithm, like for like. ``with-drift`` is
+sapwood's out-of-the-box setting (ADWIN at every node), shown for its cost; its fair
+comparison is the ``drift`` suite against river's adaptive tree."""
 
 
 @dataclasses.dataclass
@@ -313,15 +321,18 @@ def _warm_learner() -> None:
     X = np.array([[0.1, 0.0], [0.9, 1.0], [0.2, 0.0], [0.8, 1.0]])
     for pairing in PAIRINGS.values():
         model = TreeClassifier(["a", "b"], ["numeric", "category"],
-                               TreeSettings(leaf_model=pairing.sapwood, grace_period=1))
+                               TreeSettings(leaf_model=pairing.sapwood, grace_period=1,
+                                            detector=pairing.detector))
         model.learn(X, np.array([0, 1, 0, 1], np.int32), ["p", "q"])
 
 
-def _time_sapwood(data: LabeledStream, n: int, leaf: str, clock) -> tuple[float, object, int]:
+def _time_sapwood(data: LabeledStream, n: int, leaf: str, clock,
+                  detector: str = "off") -> tuple[float, object, int]:
     from .classifier import TreeClassifier
     from .settings import TreeSettings
 
-    model = TreeClassifier(data.names, data.kinds, TreeSettings(leaf_model=leaf))
+    model = TreeClassifier(data.names, data.kinds,
+                           TreeSettings(leaf_model=leaf, detector=detector))
     X, y = data.X[:n], data.y[:n]
     start = clock()
     scored = model.learn(X, y, data.classes)
@@ -357,10 +368,12 @@ def _compare(bench: Bench, name: str, spec: StreamSpec, data: LabeledStream,
     n, m = len(data.y), len(data.pairs)
     what = f"{name} {pairing.sapwood}/{pairing.river}"
     bench.say(f"learners: {what}: sapwood on {n:,} records")
-    all_seconds, all_pred, all_leaves = _time_sapwood(data, n, pairing.sapwood, bench.clock)
+    all_seconds, all_pred, all_leaves = _time_sapwood(data, n, pairing.sapwood, bench.clock,
+                                                      pairing.detector)
     seconds, pred, leaves = all_seconds, all_pred, all_leaves
     if m < n:
-        seconds, pred, leaves = _time_sapwood(data, m, pairing.sapwood, bench.clock)
+        seconds, pred, leaves = _time_sapwood(data, m, pairing.sapwood, bench.clock,
+                                              pairing.detector)
     bench.say(f"learners: {what}: river on {m:,} records")
     river_seconds, river_pred, river_leaves = _time_river(bench, data, spec, pairing.river,
                                                           what)
@@ -439,7 +452,8 @@ def learners_suite(bench: Bench) -> SuiteResult:
         bench.say(f"learners: {name} generated in {bench.clock() - start:.1f} s")
         for pairing_name, pairing in PAIRINGS.items():
             row, checks = _compare(bench, name, spec, data, pairing_name, pairing)
-            row["leaf_models"] = f"{pairing.sapwood}/{pairing.river}"
+            row["leaf_models"] = f"{pairing.sapwood}/{pairing.river}" + \
+                (f" (sapwood drift {pairing.detector})" if pairing.detector != "off" else "")
             row["leaves"] = f"{row['sapwood_leaves']}/{row['river_leaves']}"
             row.setdefault("speed_target", "(no target)")
             row.setdefault("accuracy_target", "(no target)")
@@ -455,6 +469,148 @@ def learners_suite(bench: Bench) -> SuiteResult:
         del data
     for name in bench.streams:
         result.notes.append(f"{name}: {STREAMS[name].title}; seed {bench.seed}.")
+    return result
+
+
+# ---------------------------------------------------------------- drifting streams
+
+def _concept_switches(synth, seed: int, records: int):
+    """SEA with abrupt switches of variant (theta 8 -> 9 -> 7) at 1/3 and 2/3."""
+    third = records // 3
+    width = max(1, third // 170 + 1)   # river's ConceptDriftStream overflows below this
+    inner = synth.ConceptDriftStream(stream=synth.SEA(variant=1, noise=0.1, seed=seed + 1),
+                                     drift_stream=synth.SEA(variant=2, noise=0.1,
+                                                            seed=seed + 2),
+                                     position=third, width=width, seed=seed + 3)
+    return synth.ConceptDriftStream(stream=synth.SEA(variant=0, noise=0.1, seed=seed),
+                                    drift_stream=inner, position=third, width=width,
+                                    seed=seed + 4)
+
+
+DRIFT_STREAMS: dict[str, Callable[[int, int], Iterable]] = {
+    "sea-switches": lambda seed, n: _concept_switches(_synth(), seed, n),
+    "agrawal-gradual": lambda seed, n: _synth().ConceptDriftStream(
+        stream=_synth().Agrawal(classification_function=0, seed=seed),
+        drift_stream=_synth().Agrawal(classification_function=2, seed=seed + 1),
+        position=n // 2, width=5000, seed=seed + 2),
+    "rbf-drift": lambda seed, n: _synth().RandomRBFDrift(
+        seed_model=seed, seed_sample=seed + 1, n_classes=2, n_features=10,
+        change_speed=0.0001, n_drift_centroids=50),
+    "hyperplane-drift": lambda seed, n: _synth().Hyperplane(
+        seed=seed, n_features=10, mag_change=0.001, noise_percentage=0.05),
+}
+"""Drifting streams (issue: SEA with concept switches, Agrawal with a gradual function
+switch of width 5000, RandomRBFDrift, Hyperplane with mag_change)."""
+
+
+@register("drift")
+def drift_suite(bench: Bench) -> SuiteResult:
+    """sapwood's default (ADWIN at every node) against river's adaptive tree."""
+    import river
+    from river.tree import HoeffdingAdaptiveTreeClassifier
+
+    _warm_learner()
+    result = SuiteResult(
+        "drift",
+        f"drift: sapwood TreeClassifier (defaults: adaptive leaves, ADWIN at every node) vs "
+        f"river {river.__version__} HoeffdingAdaptiveTreeClassifier (nba leaves, its "
+        f"defaults incl. bootstrap sampling, seed {bench.seed}), prequential",
+        [Column("stream", "stream", left=True), Column("records", "records", _count),
+         Column("sapwood_rps", "sapwood rec/s", _count),
+         Column("river_rps", "river rec/s", _count), Column("ratio", "ratio", _ratio),
+         Column("sapwood_accuracy", "sapwood acc", _pct),
+         Column("river_accuracy", "river acc", _pct),
+         Column("events", "alarms/swaps", left=True),
+         Column("speed_target", "speed target", left=True),
+         Column("accuracy_target", "accuracy target", left=True)])
+    n = bench.records
+    for name, make in DRIFT_STREAMS.items():
+        bench.say(f"drift: generating {name} ({n:,} records)")
+        spec = StreamSpec(name, lambda seed, make=make: make(seed, n))
+        data = make_stream(spec, n, n, bench.seed)
+        from .classifier import TreeClassifier
+        from .settings import TreeSettings
+
+        model = TreeClassifier(data.names, data.kinds, TreeSettings())
+        start = bench.clock()
+        scored = model.learn(data.X, data.y, data.classes)
+        seconds = bench.clock() - start
+        counters = model.counters()
+        bench.say(f"drift: {name}: river's adaptive tree on {n:,} records")
+        reference = HoeffdingAdaptiveTreeClassifier(leaf_prediction="nba", seed=bench.seed)
+        guesses: list = [None] * len(data.pairs)
+        start = bench.clock()
+        for i, (x, label) in enumerate(data.pairs):
+            guesses[i] = reference.predict_one(x)
+            reference.learn_one(x, label)
+        river_seconds = bench.clock() - start
+        code = {c: k for k, c in enumerate(data.classes)}
+        river_pred = np.array([-1 if g is None else code.get(str(g), -1) for g in guesses])
+        row = {"stream": name, "records": n, "sapwood_rps": n / seconds,
+               "river_rps": n / river_seconds,
+               "sapwood_accuracy": float(np.mean(scored.pred == data.y)),
+               "river_accuracy": float(np.mean(river_pred == data.y)),
+               "events": f"{counters['drift_alarms']}/{counters['alternates_swapped']} "
+                         f"(river swaps {reference.n_switch_alternate_trees})"}
+        row["ratio"] = row["sapwood_rps"] / row["river_rps"]
+        checks = [Check(f"{name}: records/s vs river's adaptive tree", row["ratio"], 30.0,
+                        ">=", "x"),
+                  Check(f"{name}: accuracy vs river's adaptive tree", row["sapwood_accuracy"],
+                        row["river_accuracy"], ">=", "%")]
+        row["speed_target"], row["accuracy_target"] = (c.verdict() for c in checks)
+        result.rows.append(row)
+        result.checks.extend(checks)
+        del data
+    return result
+
+
+# ---------------------------------------------------------------- regression
+
+@register("regression")
+def regression_suite(bench: Bench) -> SuiteResult:
+    """sapwood's TreeRegressor against river's regression trees."""
+    import river
+    from river import tree
+
+    from . import regression_bench as rb
+    from .regressor import warm_up as warm_regressor
+
+    warm_regressor()
+    result = SuiteResult(
+        "regression",
+        f"regression: sapwood TreeRegressor vs river {river.__version__} "
+        "HoeffdingTreeRegressor / HoeffdingAdaptiveTreeRegressor (drifting streams), same "
+        "leaf model (adaptive: mean or linear, whichever errs less), prequential",
+        [Column("stream", "stream", left=True), Column("records", "records", _count),
+         Column("sapwood_rps", "sapwood rec/s", _count),
+         Column("river_rps", "river rec/s", _count), Column("ratio", "ratio", _ratio),
+         Column("sapwood_rmse", "sapwood RMSE", lambda v: f"{v:.3f}"),
+         Column("river_rmse", "river RMSE", lambda v: f"{v:.3f}"),
+         Column("speed_target", "speed target", left=True),
+         Column("rmse_target", "RMSE target", left=True)])
+    n = bench.records
+    cases = [("friedman", rb.friedman(n, bench.seed), False),
+             ("friedman-drift-gra", rb.friedman_drift(n, bench.seed, "gra"), True),
+             ("friedman-drift-lea", rb.friedman_drift(n, bench.seed, "lea"), True),
+             ("wide-friedman-50", rb.wide_friedman(n, bench.seed), False)]
+    for name, stream, drifting in cases:
+        bench.say(f"regression: {name} ({n:,} records)")
+        river_model = rb.river_counterpart(None, adaptive=drifting)
+        if drifting:
+            river_model = tree.HoeffdingAdaptiveTreeRegressor(
+                leaf_prediction="adaptive", seed=bench.seed)
+        out = rb.compare_with_river(stream, None, river_model, clock=bench.clock)
+        row = {"stream": name, "records": out["records"],
+               "sapwood_rps": out["records"] / out["sapwood"]["seconds"],
+               "river_rps": out["records"] / out["river"]["seconds"],
+               "ratio": out["speed_ratio"], "sapwood_rmse": out["sapwood"]["rmse"],
+               "river_rmse": out["river"]["rmse"]}
+        checks = [Check(f"{name}: records/s vs river", row["ratio"], 50.0, ">=", "x"),
+                  Check(f"{name}: RMSE vs river", row["sapwood_rmse"], row["river_rmse"],
+                        "<=", "rmse")]
+        row["speed_target"], row["rmse_target"] = (c.verdict() for c in checks)
+        result.rows.append(row)
+        result.checks.extend(checks)
     return result
 
 
