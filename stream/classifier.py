@@ -42,6 +42,7 @@ class DriftEvent:
     other: int
     before: float
     after: float
+    path: tuple | None = None
 
 
 @dataclasses.dataclass
@@ -88,12 +89,15 @@ class TreeClassifier:
             [j for j, k in enumerate(self.feature_kinds) if k == "category"], np.int64)
 
     # ------------------------------------------------------------------ learning
-    def learn(self, X: np.ndarray, y: np.ndarray, classes: list[str]) -> Scored:
+    def learn(self, X: np.ndarray, y: np.ndarray, classes: list[str],
+              categories: dict[str, list[str]] | None = None) -> Scored:
         """Score each row of ``X`` with the current tree, then learn it.
 
         ``y`` holds class codes indexing ``classes`` (the labels known so far; the list
-        may only grow between calls).
+        may only grow between calls). ``categories`` (labels per categorical feature)
+        only names category values in the paths of drift events.
         """
+        self._categories = categories or {}
         X = np.ascontiguousarray(X, dtype=np.float64)
         y = np.ascontiguousarray(y, dtype=np.int32)
         if X.ndim != 2 or X.shape[1] != len(self.feature_names):
@@ -120,19 +124,23 @@ class TreeClassifier:
                 self._make_room()
 
     def take_events(self) -> list[DriftEvent]:
-        """Drift events since the last call, oldest first. Node ids in them stay valid
-        (their paths can be read) until the next :meth:`learn`."""
+        """Drift events since the last call, oldest first, each with the node's path as
+        conditions, read when the event was collected (node ids are recycled later)."""
         events, self.events_ = self.events_, []
         return events
 
     def _collect_events(self) -> None:
         t = self.tables_
         count = int(t.state[S_EVENTS])
+        from .rules import node_conditions
+
         for e in range(count):
+            node = int(t.events_i[e, EV_NODE])
             self.events_.append(DriftEvent(
-                EVENT_NAMES[int(t.events_i[e, EV_KIND])], int(t.events_i[e, EV_NODE]),
+                EVENT_NAMES[int(t.events_i[e, EV_KIND])], node,
                 int(t.events_i[e, EV_RECORD]), int(t.events_i[e, EV_OTHER]),
-                float(t.events_f[e, EV_BEFORE]), float(t.events_f[e, EV_AFTER])))
+                float(t.events_f[e, EV_BEFORE]), float(t.events_f[e, EV_AFTER]),
+                node_conditions(self, node, getattr(self, "_categories", {}))))
         t.state[S_EVENTS] = 0
 
     def predict(self, X: np.ndarray) -> Scored:

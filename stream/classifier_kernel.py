@@ -871,10 +871,10 @@ def react(t, n: int, alarm: bool, before: float, record: int) -> int:
             after = error_rate(t.node_f, n)
             rose = page_hinkley_rose(t.ph_state, d, t.cfg_f[F_PH_THRESHOLD])
         add_event(t, EV_ALARM, n, record, -1, before, after)
-        # a branch restarts its error estimate on any alarm; a leaf when its error fell
-        if t.node_i[n, KIND] != LEAF or not rose:
-            t.node_f[n, ERR_SUM] = 0.0
-            t.node_f[n, ERR_N] = 0.0
+        # the error estimate restarts at every alarm: it is what the swap test weighs
+        # against an alternate grown from here on
+        t.node_f[n, ERR_SUM] = 0.0
+        t.node_f[n, ERR_N] = 0.0
         if rose:
             start_alternate(t, n, record)
         return n
