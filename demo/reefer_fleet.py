@@ -9,7 +9,14 @@ compressor firmware update moves the current that signals a failing compressor f
 6.0 A to 4.0 A (and adds a low-speed mode that the old rule would flag), and a new cargo,
 ``bananas``, appears with its own setpoint and its own rule.
 
-Public names: :func:`generate`, :func:`write_csv`, :func:`drift_row`, :data:`COLUMNS`.
+With ``energy=True`` each row also carries a numeric target for a regression tree,
+``unit_kwh_per_hour``: the electrical energy the unit draws, which follows a formula of
+ambient air, setpoint, door and defrost (the answer key in ``demo/README.md``) and drops
+by 30 % for the compressor's share at the firmware update. It is off by default, so the
+classification stream and its file stay exactly as they were.
+
+Public names: :func:`generate`, :func:`write_csv`, :func:`drift_row`, :data:`COLUMNS`,
+:data:`ENERGY_COLUMN`.
 Run ``python demo/reefer_fleet.py --help`` for the command line.
 """
 
@@ -31,6 +38,9 @@ COLUMNS = (
 )
 """Column order of the generated frame and CSV."""
 
+ENERGY_COLUMN = "unit_kwh_per_hour"
+"""The numeric target added after :data:`COLUMNS` when ``energy=True``."""
+
 REPORT_INTERVAL_S = 300
 """Each container reports every five minutes."""
 
@@ -47,6 +57,13 @@ DEFROST_AMBIENT_C = 25.0  # chilled cargo in defrost at or above this ambient
 BANANA_RETURN_C = 15.0   # bananas: return air at or above this (ripening heat)
 LABEL_FLIP = 0.04        # share of labels flipped at random
 MISSING = 0.02           # share of each sensor reading left empty
+# The energy answer key: kWh per hour = compressor + door (+ heaters in defrost)
+KWH_BASE = 1.2           # compressor at zero lift (ambient = setpoint), kWh per hour
+KWH_PER_LIFT_C = 0.045   # ... plus this per degC of lift, ambient_c - setpoint_c
+KWH_DOOR = 0.9           # door open: fans and coil fight the warm air coming in
+KWH_DEFROST = 3.5        # defrost: compressor off, heaters on, in place of the compressor
+KWH_FIRMWARE = 0.7       # after the firmware update the compressor's share is 30 % lower
+KWH_NOISE = 0.08         # standard deviation of the meter's noise, kWh per hour
 
 _CARGO_BEFORE = np.array(["chilled", "frozen", "pharma"], dtype=object)
 _CARGO_SHARE = (0.45, 0.35, 0.20)
@@ -117,8 +134,23 @@ def _compressor(rng: np.random.Generator, ambient: np.ndarray, frozen: np.ndarra
     return np.clip(amps, 0.0, None), delta
 
 
+def _energy(seed: int, ambient: np.ndarray, setpoint: np.ndarray, door: np.ndarray,
+            defrost: np.ndarray, after: np.ndarray) -> np.ndarray:
+    """Energy the unit draws, kWh per hour, from the recorded readings (the answer key).
+
+    Its noise comes from its own generator, seeded from ``seed``, so that asking for the
+    column leaves every other column as it was.
+    """
+    lift = ambient - setpoint
+    compressor = (KWH_BASE + KWH_PER_LIFT_C * lift) * np.where(after, KWH_FIRMWARE, 1.0)
+    kwh = np.where(defrost, KWH_DEFROST, compressor) + KWH_DOOR * door
+    noise = np.random.default_rng([seed, 1]).normal(0.0, KWH_NOISE, ambient.shape[0])
+    return np.round(kwh + noise, 2)
+
+
 def generate(rows: int, seed: int = 7, drift_at: float = 0.6, *,
-             containers: int = 100, start: np.datetime64 = START) -> pd.DataFrame:
+             containers: int = 100, start: np.datetime64 = START,
+             energy: bool = False) -> pd.DataFrame:
     """Generate the reefer-fleet stream.
 
     Parameters
@@ -134,12 +166,15 @@ def generate(rows: int, seed: int = 7, drift_at: float = 0.6, *,
         second apart and ``time`` is strictly increasing.
     start
         Time of the first report, UTC.
+    energy
+        Add the numeric target :data:`ENERGY_COLUMN` after the other columns.
 
     Returns
     -------
     pandas.DataFrame
-        Columns :data:`COLUMNS`; ``time`` is datetime64 UTC, categorical fields are strings,
-        empty readings are NaN. ``frame.attrs["drift_row"]`` is the first second-regime row.
+        Columns :data:`COLUMNS` (and :data:`ENERGY_COLUMN` with ``energy``); ``time`` is
+        datetime64 UTC, categorical fields are strings, empty readings are NaN (the energy
+        meter is never empty). ``frame.attrs["drift_row"]`` is the first second-regime row.
     """
     rows = require_int("rows", rows, 0)
     first_b = drift_row(rows, drift_at)
@@ -219,6 +254,7 @@ def generate(rows: int, seed: int = 7, drift_at: float = 0.6, *,
              | (chilled & defrost & (ambient >= DEFROST_AMBIENT_C))
              | (is_banana & (ret >= BANANA_RETURN_C)))
     label = truth ^ (rng.random(n) < LABEL_FLIP)
+    kwh = _energy(seed, ambient, setp, door, defrost, after) if energy else None
 
     # Sensor dropouts: each reading empty on its own; derived fields follow their sources.
     gone = rng.random((6, n)) < MISSING
@@ -248,17 +284,23 @@ def generate(rows: int, seed: int = 7, drift_at: float = 0.6, *,
         "defrost": defrost_txt,
         "excursion_next_hour": np.where(label, "yes", "no").astype(object),
     }, columns=list(COLUMNS))
+    if kwh is not None:
+        frame[ENERGY_COLUMN] = kwh
     frame.attrs["drift_row"] = first_b
     return frame
 
 
-def write_csv(path: str | Path, rows: int, seed: int = 7, drift_at: float = 0.6) -> Path:
+def write_csv(path: str | Path, rows: int, seed: int = 7, drift_at: float = 0.6,
+              energy: bool = False) -> Path:
     """Generate the stream and write it as CSV (gzip when ``path`` ends in ``.gz``).
 
     Times are written as ISO-8601 UTC (``2025-03-03T00:00:03Z``), empty readings as empty
-    fields. Parent folders are created. Returns the path written.
+    fields, readings with one decimal and the energy (with ``energy``) with two. Parent
+    folders are created. Returns the path written.
     """
-    frame = generate(rows, seed, drift_at)
+    frame = generate(rows, seed, drift_at, energy=energy)
+    if energy:
+        frame[ENERGY_COLUMN] = frame[ENERGY_COLUMN].map("{:.2f}".format)
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
     frame.to_csv(target, index=False, date_format="%Y-%m-%dT%H:%M:%SZ",
@@ -276,9 +318,11 @@ def write_csv(path: str | Path, rows: int, seed: int = 7, drift_at: float = 0.6)
                    "cargo arrive; 1 for no drift.")
 @click.option("--out", type=click.Path(dir_okay=False), default="demo/output/reefer.csv",
               show_default=True, help="CSV file to write; a .gz ending compresses it.")
-def main(rows: int, seed: int, drift_at: float, out: str) -> None:
+@click.option("--energy", is_flag=True,
+              help=f"Also write the numeric target {ENERGY_COLUMN} (last column).")
+def main(rows: int, seed: int, drift_at: float, out: str, energy: bool) -> None:
     """Write the invented reefer-fleet stream (with one regime change) as CSV."""
-    target = write_csv(out, rows, seed, drift_at)
+    target = write_csv(out, rows, seed, drift_at, energy=energy)
     first_b = drift_row(rows, drift_at)
     click.echo(f"wrote {rows} rows to {target}; second regime from row {first_b} "
                f"(0-based, header not counted)", err=True)

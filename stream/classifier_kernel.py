@@ -791,6 +791,7 @@ def start_alternate(t, n: int, record: int) -> int:
                   error_rate(t.node_f, old))
         kill_subtree(t, old)
         t.state[S_DROPS] += 1
+        t.state[S_ALTS] -= 1
     a = new_leaf(t, t.node_i[n, PARENT], t.node_i[n, BRANCH], ALTERNATE, record)
     t.node_i[a, DEPTH] = t.node_i[n, DEPTH]
     t.node_i[a, ALT_OF] = n

@@ -10,6 +10,9 @@ linear_formula(model, node) -> (intercept, [(feature, coefficient), ...])
     The whole linear model of a node in original units, terms in feature order.
 leaf_consequent(model, leaf, max_terms=3) -> Consequent
 leaf_consequents(model, max_terms=3) -> dict[leaf id, Consequent]
+    Leaves of the main tree (alternate subtrees growing beside it are not rules yet).
+leaf_drift_state(model, leaf) -> (state, replaced_at)
+    ``watching``, ``replaced`` or ``stable``, as the classifier's rules say it.
 format_consequent(target, consequent, digits=3) -> str
     ``minutes_to_excursion = 42 +- 7.5`` or ``... = 12.3 + 0.8 * ambient_c - 1.2 * amps``.
 leaf_conditions(model, leaf, categories) -> tuple[Condition, ...]
@@ -33,10 +36,10 @@ import math
 
 import numpy as np
 
-from .regression_tables import (ABS_ERROR, CHILD_START, EQUALS, ERR_LINEAR, ERR_MEAN, FEATURE,
-                                FM_KIND, KIND, LEAF, MULTIWAY, N_CHILDREN, NUMERIC, PARENT,
-                                SC_MEAN, SC_SD, SCORED, SLOT, SQ_ERROR, THRESHOLD, WEIGHT, Y_M2,
-                                Y_MEAN, Y_N)
+from .regression_tables import (ABS_ERROR, ALT, BRANCH, CHILD_START, EQUALS, ERR_LINEAR,
+                                ERR_MEAN, FEATURE, FM_KIND, KIND, LEAF, MULTIWAY, N_CHILDREN,
+                                NUMERIC, PARENT, SC_MEAN, SC_SD, SCORED, SLOT, SQ_ERROR,
+                                SWAPPED, THRESHOLD, WEIGHT, Y_M2, Y_MEAN, Y_N)
 from .rules import Condition, merge_conditions
 
 
@@ -137,11 +140,14 @@ def _short_formula(model, node: int, max_terms: int):
     return float(intercept), terms, omitted
 
 
+def _main_leaves(model) -> list[int]:
+    t = model.tables_
+    return [int(n) for n in model.main_nodes() if t.node_i[n, KIND] == LEAF]
+
+
 def _leaf_total(model) -> float:
     t = model.tables_
-    n = model.n_nodes
-    leaves = t.node_i[:n, KIND] == LEAF
-    return float(t.node_f[:n, Y_N][leaves].sum())
+    return float(sum(t.node_f[n, Y_N] for n in _main_leaves(model)))
 
 
 def leaf_consequent(model, leaf: int, max_terms: int = 3, total: float | None = None
@@ -174,11 +180,31 @@ def leaf_consequent(model, leaf: int, max_terms: int = 3, total: float | None = 
 
 
 def leaf_consequents(model, max_terms: int = 3) -> dict[int, Consequent]:
-    """:func:`leaf_consequent` of every leaf, by node id."""
-    t = model.tables_
+    """:func:`leaf_consequent` of every leaf of the main tree, by node id (ascending)."""
     total = _leaf_total(model)
     return {n: leaf_consequent(model, n, max_terms, total)
-            for n in range(model.n_nodes) if t.node_i[n, KIND] == LEAF}
+            for n in sorted(_main_leaves(model))}
+
+
+def leaf_drift_state(model, leaf: int) -> tuple[str, int | None]:
+    """``watching`` when an alternate grows beside the leaf or a node above it, else
+    ``replaced`` when the leaf lies in a subtree swapped in (with the latest such
+    record count), else ``stable``."""
+    t = model.tables_
+    root = model.root
+    watching = False
+    replaced = None
+    n = leaf
+    while n >= 0:
+        watching = watching or t.node_i[n, ALT] >= 0
+        if t.node_i[n, SWAPPED] >= 0:
+            replaced = max(replaced or 0, int(t.node_i[n, SWAPPED]))
+        if n == root:
+            break
+        n = int(t.node_i[n, PARENT])
+    if watching:
+        return "watching", replaced
+    return ("replaced", replaced) if replaced is not None else ("stable", None)
 
 
 def format_value(value: float, digits: int = 3) -> str:
@@ -246,7 +272,7 @@ def leaf_steps(model, leaf: int, categories: dict[str, list[str]] | None = None)
         labels = categories.get(model.feature_names[f], [])
         start, count = t.node_i[parent, CHILD_START], t.node_i[parent, N_CHILDREN]
         block = [int(c) for c in t.child_table[start:start + count]]
-        position = block.index(child)
+        position = int(t.node_i[child, BRANCH])
         missing = _heaviest(t, parent) == child
         kind = t.node_i[parent, KIND]
         if kind == NUMERIC:

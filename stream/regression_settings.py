@@ -15,7 +15,7 @@ import dataclasses
 import math
 
 from .errors import ConfigError
-from .settings import require_choice, require_float, require_int
+from .settings import DETECTORS, require_choice, require_float, require_int
 
 REGRESSION_CRITERIA = {"variance": 0, "deviation": 1}
 """Split merits by name -> kernel id. ``variance``: variance reduction (as river's
@@ -67,6 +67,20 @@ class RegressionSettings:
         Step of the linear leaves' normalised least-mean-squares update, in (0, 2).
     selector_decay
         Fading factor of the squared errors the adaptive leaves compare, in (0, 1].
+    detector
+        Drift detector kept at every node on the normalised absolute error of the
+        records' leaf predictions (:mod:`stream.regression_drift`): ``adwin``,
+        ``page_hinkley`` or ``off``. On an alarm where the error rose an alternate
+        subtree grows beside the node (Bifet & Gavalda, IDA 2009).
+    adwin_delta
+        ADWIN's confidence parameter (smaller: fewer, later alarms).
+    page_hinkley_threshold
+        Page-Hinkley's alarm threshold lambda, in units of summed normalised error.
+    swap_after
+        Records both a node and its alternate must have been scored on before they
+        are compared.
+    swap_significance
+        Significance of the comparison that swaps in (or drops) an alternate.
     """
 
     criterion: str = "variance"
@@ -82,6 +96,11 @@ class RegressionSettings:
     memory_mb: float = 256.0
     learning_rate: float = 0.05
     selector_decay: float = 0.95
+    detector: str = "adwin"
+    adwin_delta: float = 0.002
+    page_hinkley_threshold: float = 50.0
+    swap_after: int = 300
+    swap_significance: float = 0.05
 
     def __post_init__(self) -> None:
         require_choice("criterion", self.criterion, REGRESSION_CRITERIA)
@@ -97,6 +116,12 @@ class RegressionSettings:
         require_float("memory budget (MB)", self.memory_mb, 0.0, math.inf)
         require_float("learning rate", self.learning_rate, 0.0, 2.0)
         require_float("selector decay", self.selector_decay, 0.0, 1.0, high_open=False)
+        # the same names, defaults and messages as stream.settings.TreeSettings
+        require_choice("drift detector", self.detector, DETECTORS)
+        require_float("ADWIN delta", self.adwin_delta, 0.0, 1.0)
+        require_float("Page-Hinkley threshold", self.page_hinkley_threshold, 0.0, math.inf)
+        require_int("swap window", self.swap_after, 1)
+        require_float("swap significance", self.swap_significance, 0.0, 1.0)
 
     def to_dict(self) -> dict:
         return dataclasses.asdict(self)

@@ -10,13 +10,20 @@ have the positions and meanings of the classifier's, so code that reads paths of
 tables can serve either tree. The constants are defined here, not imported, so the two
 trees' tables can evolve apart.
 
-Nodes (capacity N; ids 0..n_nodes-1; the root is 0)
-    node_i  int64[N, 8]  KIND (0 leaf, 1 numeric ``x <= threshold`` -> child 0,
+Nodes (capacity N; ids 0..S_NODES-1, dead ids are reused; the main root is S_ROOT)
+    node_i  int64[N, 14] KIND (0 leaf, 1 numeric ``x <= threshold`` -> child 0,
                          2 category multiway -> child_table[start + code], 3 category
                          ``x == code`` -> child 0), FEATURE (-1 at leaves), CHILD_START,
                          N_CHILDREN, PARENT, DEPTH, CREATED (records learned at creation),
-                         SLOT (row of leaf observers, -1 when inactive or a branch)
-    node_f  f8[N, 13]    THRESHOLD, WEIGHT (weight that reached the node; missing values
+                         SLOT (row of leaf observers, -1 when inactive or a branch),
+                         BRANCH (position in the parent's child block; an alternate root
+                         takes the position of the node it may replace), ALT (root of the
+                         alternate subtree growing beside this node, -1 none), STATUS
+                         (MAIN, ALTERNATE: inside an alternate subtree, DEAD: replaced or
+                         dropped, FREE: recycled), DET (detector row, -1 none), SWAPPED
+                         (records learned when this subtree replaced another, -1 never),
+                         ALT_OF (for an alternate root: the node it grows beside, else -1)
+    node_f  f8[N, 16]    THRESHOLD, WEIGHT (weight that reached the node; missing values
                          follow the heaviest child), LAST_ATTEMPT (OBSERVED at the last
                          split attempt), Y_N, Y_MEAN, Y_M2 (target count, mean and
                          Welford sum of squares: live at leaves, as at the split for
@@ -25,10 +32,13 @@ Nodes (capacity N; ids 0..n_nodes-1; the root is 0)
                          ABS_ERROR, SQ_ERROR (records the leaf scored since it was
                          created, and the sum of their absolute and squared errors),
                          OBSERVED (records the leaf's observers hold: the n of the
-                         Hoeffding bound)
+                         Hoeffding bound), ERR_SUM, ERR_SQ, ERR_N (sum and sum of squares
+                         of the normalised absolute errors the node's detector was fed,
+                         and their count, since the node's error estimate was last reset:
+                         the estimate the swap test compares)
     lin     f8[N, Fn+1]  linear model per node on standardised inputs: a weight per
                          numeric feature, then the intercept (branches keep theirs as at
-                         the split; children start from it)
+                         the split; children and alternates start from it)
     lin_x   f8[N, Fn, 3] count, mean and Welford M2 of each numeric input among the
                          records the node learned since it was created: the leaf-local
                          scaling of the linear model's update steps
@@ -47,8 +57,23 @@ Leaf observers (capacity S slots; only active leaves hold one)
     c_stats f8[S, Fc, K, 3]    target count, mean, Welford M2 per category code
     free_slots int64[S]        stack of free slot ids
 
+Drift (one detector row per live node; see :mod:`stream.drift` and
+:mod:`stream.regression_drift`)
+    adwin_buckets, adwin_counts, adwin_state   ADWIN tables (zero rows unless chosen)
+    ph_state                                   Page-Hinkley table (zero rows unless chosen)
+    free_dets   int64[N]   stack of free detector rows
+    free_nodes  int64[N]   stack of recycled node ids
+    events_i    int64[E, 4]  EV_KIND (EV_ALARM, EV_START, EV_SWAP, EV_DROP), EV_NODE,
+                             EV_RECORD, EV_OTHER (the alternate root for start/swap/drop)
+    events_f    f8[E, 2]     EV_BEFORE, EV_AFTER: mean normalised absolute errors (alarm:
+                             before and after the detector cut its window; swap/drop:
+                             the node's and the alternate's)
+    err_scale   f8[4]        ES_WEIGHT, ES_MEAN, ES_MAD_WEIGHT, ES_MAD: the target's faded
+                             mean and mean absolute deviation with their faded weights,
+                             the scale that normalises errors into [0, 1]
+
 Other
-    state   int64[16]  counters, indices S_* below (the same positions as the
+    state   int64[32]  counters, indices S_* below (the same positions as the
                        classifier's counters of the same names)
     cfg_i, cfg_f       settings, indices RC_* and RF_* below
     fmap    int64[F, 3]  per feature: FM_KIND (0 numeric, 1 category), FM_LOCAL (index
@@ -61,13 +86,27 @@ import collections
 
 import numpy as np
 
+from .drift import ADWIN, ADWIN_COLS, ADWIN_LEVELS, PAGE_HINKLEY, PH_COLS, adwin_reset, \
+    page_hinkley_reset
 from .errors import ModelFileError
 from .regression_settings import (REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS,
                                   REGRESSION_OBSERVERS, RegressionSettings)
+from .settings import DETECTORS
 
-# node_i columns: the same positions and meanings as the classifier's first eight
-KIND, FEATURE, CHILD_START, N_CHILDREN, PARENT, DEPTH, CREATED, SLOT = range(8)
-NODE_I_COLS = 8
+# node_i columns: the same positions and meanings as the classifier's
+KIND, FEATURE, CHILD_START, N_CHILDREN, PARENT, DEPTH, CREATED, SLOT, BRANCH, ALT, STATUS, \
+    DET, SWAPPED, ALT_OF = range(14)
+NODE_I_COLS = 14
+# node status, as in stream.tables
+MAIN, ALTERNATE, DEAD, FREE = 0, 1, 2, 3
+# events, as in stream.tables
+EV_KIND, EV_NODE, EV_RECORD, EV_OTHER = range(4)
+EV_BEFORE, EV_AFTER = range(2)
+EV_ALARM, EV_START, EV_SWAP, EV_DROP = 1, 2, 3, 4
+EVENT_NAMES = {EV_ALARM: "alarm", EV_START: "start", EV_SWAP: "swap", EV_DROP: "drop"}
+# err_scale entries
+ES_WEIGHT, ES_MEAN, ES_MAD_WEIGHT, ES_MAD = range(4)
+ERR_SCALE_SIZE = 4
 # node kinds, as in stream.tables
 LEAF, NUMERIC, MULTIWAY, EQUALS = 0, 1, 2, 3
 # fmap columns, as in stream.tables
@@ -82,13 +121,25 @@ S_LEARNED = 4        # records learned
 S_CATS_SEEN = 6      # 1 + highest category code learned so far (any categorical feature)
 S_SPLITS = 7         # splits made
 S_DEACTIVATED = 9    # leaves deactivated for the memory budget
-S_LEAVES = 10        # leaves, active or not
-STATE_SIZE = 16
+S_LEAVES = 10        # live leaves (main and alternate), active or not
+S_ROOT = 11          # root of the main tree
+S_FREE_NODES = 12    # recycled node ids on their stack
+S_FREE_DETS = 13     # free detector rows on their stack
+S_EVENTS = 14        # events waiting in the buffer
+S_ALTS = 15          # alternate subtrees growing
+S_ALARMS = 16        # detector alarms
+S_STARTS = 17        # alternates started
+S_SWAPS = 18         # alternates swapped in
+S_DROPS = 19         # alternates dropped
+S_MAX_DEPTH = 20     # deepest node ever created (a bound for path buffers)
+S_DEAD = 21          # dead nodes not yet recycled
+S_CREATED = 22       # nodes ever created (a change counter)
+STATE_SIZE = 32
 
 # node_f columns (THRESHOLD and WEIGHT as in stream.tables)
 THRESHOLD, WEIGHT, LAST_ATTEMPT, Y_N, Y_MEAN, Y_M2, ERR_MEAN, ERR_LINEAR, MERIT, SCORED, \
-    ABS_ERROR, SQ_ERROR, OBSERVED = range(13)
-NODE_F_COLS = 13
+    ABS_ERROR, SQ_ERROR, OBSERVED, ERR_SUM, ERR_SQ, ERR_N = range(16)
+NODE_F_COLS = 16
 # scale columns
 SC_N, SC_MEAN, SC_M2, SC_SD, SC_INV = range(5)
 SCALE_COLS = 5
@@ -99,14 +150,23 @@ ST_N, ST_MEAN, ST_M2 = range(3)
 
 # cfg_i indices
 RC_CRITERION, RC_GRACE, RC_LEAF_MODEL, RC_OBSERVER, RC_BINS, RC_MIN_BRANCH, \
-    RC_BINARY_CATS, RC_MAX_DEPTH, RC_BUFFER = range(9)
-CFG_I_SIZE = 12
+    RC_BINARY_CATS, RC_MAX_DEPTH, RC_BUFFER, RC_DETECTOR, RC_ADWIN_CLOCK, RC_ADWIN_BUCKETS, \
+    RC_ADWIN_MIN_LEN, RC_ADWIN_GRACE, RC_PH_MIN, RC_PH_MODE, RC_SWAP_AFTER = range(17)
+CFG_I_SIZE = 20
 # cfg_f indices
-RF_DELTA, RF_TAU, RF_MEMORY_BYTES, RF_RATE, RF_DECAY = range(5)
-CFG_F_SIZE = 8
+RF_DELTA, RF_TAU, RF_MEMORY_BYTES, RF_RATE, RF_DECAY, RF_ADWIN_DELTA, RF_PH_DELTA, \
+    RF_PH_THRESHOLD, RF_PH_ALPHA, RF_SWAP_SIGNIFICANCE, RF_SCALE_FADING = range(11)
+CFG_F_SIZE = 12
 
-FIELDS = ("node_i", "node_f", "lin", "lin_x", "child_table", "scale", "q_edges", "q_stats", "q_buf",
-          "q_meta", "c_stats", "free_slots", "state", "cfg_i", "cfg_f", "fmap")
+SCALE_FADING = 0.999
+"""Fading factor of the target's mean and mean absolute deviation that normalise the
+errors the detectors watch (:mod:`stream.regression_drift`): about the last thousand
+records carry the scale."""
+
+FIELDS = ("node_i", "node_f", "lin", "lin_x", "child_table", "scale", "q_edges", "q_stats",
+          "q_buf", "q_meta", "c_stats", "free_slots", "state", "cfg_i", "cfg_f", "fmap",
+          "adwin_buckets", "adwin_counts", "adwin_state", "ph_state", "free_dets",
+          "free_nodes", "events_i", "events_f", "err_scale")
 SLOT_TABLES = ("q_edges", "q_stats", "q_buf", "q_meta", "c_stats")
 
 RegressorTables = collections.namedtuple("RegressorTables", FIELDS)
@@ -130,6 +190,20 @@ def config_arrays(settings: RegressionSettings) -> tuple[np.ndarray, np.ndarray]
     cfg_f[RF_MEMORY_BYTES] = settings.memory_mb * 2.0 ** 20
     cfg_f[RF_RATE] = settings.learning_rate
     cfg_f[RF_DECAY] = settings.selector_decay
+    cfg_i[RC_DETECTOR] = DETECTORS[settings.detector]
+    cfg_i[RC_ADWIN_CLOCK] = 32          # river.drift.ADWIN defaults (Bifet & Gavalda 2007),
+    cfg_i[RC_ADWIN_BUCKETS] = 5         # as the classifier's (stream.tables.config_arrays)
+    cfg_i[RC_ADWIN_MIN_LEN] = 5
+    cfg_i[RC_ADWIN_GRACE] = 10
+    cfg_f[RF_ADWIN_DELTA] = settings.adwin_delta
+    cfg_i[RC_PH_MIN] = 30               # river.drift.PageHinkley defaults
+    cfg_i[RC_PH_MODE] = 0
+    cfg_f[RF_PH_DELTA] = 0.005
+    cfg_f[RF_PH_THRESHOLD] = settings.page_hinkley_threshold
+    cfg_f[RF_PH_ALPHA] = 1.0 - 0.0001
+    cfg_i[RC_SWAP_AFTER] = settings.swap_after
+    cfg_f[RF_SWAP_SIGNIFICANCE] = settings.swap_significance
+    cfg_f[RF_SCALE_FADING] = SCALE_FADING
     return cfg_i, cfg_f
 
 
@@ -142,9 +216,22 @@ def _slot_shapes(slots: int, n_numeric: int, n_cat: int, cats: int, bins: int,
             "c_stats": (slots, n_cat, cats, 3)}
 
 
+def _detector_shapes(detector: int, rows: int, buckets: int) -> dict:
+    adwin = rows if detector == ADWIN else 0
+    ph = rows if detector == PAGE_HINKLEY else 0
+    return {"adwin_buckets": (adwin, ADWIN_LEVELS, buckets + 1, 2),
+            "adwin_counts": (adwin, ADWIN_LEVELS), "adwin_state": (adwin, ADWIN_COLS),
+            "ph_state": (ph, PH_COLS)}
+
+
+def _event_capacity(nodes: int) -> int:
+    return 4 * nodes + 64
+
+
 def allocate(settings: RegressionSettings, feature_kinds: list[str], cats: int = 4,
              nodes: int = 64, slots: int = 32) -> RegressorTables:
-    """Empty tables holding a single active root leaf (node 0)."""
+    """Empty tables holding a single active root leaf (node 0) with, when drift
+    detection is on, a fresh detector."""
     fmap = np.zeros((len(feature_kinds), 3), np.int64)
     counters = [0, 0]
     for f, name in enumerate(feature_kinds):
@@ -155,7 +242,10 @@ def allocate(settings: RegressionSettings, feature_kinds: list[str], cats: int =
     cfg_i, cfg_f = config_arrays(settings)
     shapes = _slot_shapes(slots, counters[0], counters[1], cats, settings.bins,
                           int(cfg_i[RC_BUFFER]))
-    arrays = {name: np.zeros(shape, np.int64 if name == "q_meta" else np.float64)
+    shapes.update(_detector_shapes(int(cfg_i[RC_DETECTOR]), nodes,
+                                   int(cfg_i[RC_ADWIN_BUCKETS])))
+    integer = ("q_meta", "adwin_counts")
+    arrays = {name: np.zeros(shape, np.int64 if name in integer else np.float64)
               for name, shape in shapes.items()}
     arrays.update(
         node_i=np.zeros((nodes, NODE_I_COLS), np.int64),
@@ -165,12 +255,31 @@ def allocate(settings: RegressionSettings, feature_kinds: list[str], cats: int =
         child_table=np.full(max(4 * nodes, 16), -1, np.int64),
         scale=np.zeros((counters[0] + 1, SCALE_COLS), np.float64),
         free_slots=np.arange(slots - 1, -1, -1, dtype=np.int64),
+        free_dets=np.arange(nodes - 1, -1, -1, dtype=np.int64),
+        free_nodes=np.zeros(nodes, np.int64),
+        events_i=np.zeros((_event_capacity(nodes), 4), np.int64),
+        events_f=np.zeros((_event_capacity(nodes), 2), np.float64),
+        err_scale=np.zeros(ERR_SCALE_SIZE, np.float64),
         state=np.zeros(STATE_SIZE, np.int64), cfg_i=cfg_i, cfg_f=cfg_f, fmap=fmap)
     t = RegressorTables(**arrays)
     t.state[S_NODES] = 1
     t.state[S_LEAVES] = 1
+    t.state[S_ROOT] = 0
+    t.state[S_FREE_DETS] = nodes
+    t.state[S_CREATED] = 1
     t.node_i[0, FEATURE] = -1
     t.node_i[0, PARENT] = -1
+    t.node_i[0, ALT] = -1
+    t.node_i[0, SWAPPED] = -1
+    t.node_i[0, DET] = -1
+    t.node_i[0, ALT_OF] = -1
+    if t.cfg_i[RC_DETECTOR] != DETECTORS["off"]:
+        t.state[S_FREE_DETS] = nodes - 1
+        t.node_i[0, DET] = t.free_dets[nodes - 1]
+        if t.adwin_state.shape[0]:
+            adwin_reset(t.adwin_buckets, t.adwin_counts, t.adwin_state, t.node_i[0, DET])
+        if t.ph_state.shape[0]:
+            page_hinkley_reset(t.ph_state, t.node_i[0, DET])
     t.state[S_FREE_TOP] = slots - 1
     t.state[S_ACTIVE] = 1
     t.node_i[0, SLOT] = t.free_slots[slots - 1]
@@ -190,23 +299,45 @@ def _resized(arr: np.ndarray, shape: tuple, fill=0) -> np.ndarray:
     return out
 
 
+def _grown_stack(stack: np.ndarray, top: int, old: int, new: int) -> np.ndarray:
+    """A free-id stack of capacity ``new``: the new ids go under the existing ones, so
+    the order in which ids are reused stays the same."""
+    extra = np.arange(new - 1, old - 1, -1, dtype=np.int64)
+    out = np.empty(new, np.int64)
+    out[:len(extra)] = extra
+    out[len(extra):len(extra) + top] = stack[:top]
+    return out
+
+
 def grow(t: RegressorTables, nodes: int = 0, slots: int = 0, cats: int = 0,
          children: int = 0) -> RegressorTables:
     """Return tables with at least the given capacities (0 = keep), contents preserved.
 
-    Growing the category capacity also re-lays the child table: every multiway branch
-    owns a block with one entry per possible category code.
+    Node capacity carries the detector rows and the event buffer with it. Growing the
+    category capacity also re-lays the child table: every multiway branch owns a block
+    with one entry per possible category code.
     """
     cap = capacities(t)
     asked = {"nodes": nodes, "slots": slots, "cats": cats, "children": children}
     new = {k: max(v, asked[k]) for k, v in cap.items()}
     arrays = t._asdict()
     arrays["state"] = t.state.copy()
+    state = arrays["state"]
     if new["nodes"] != cap["nodes"]:
         arrays["node_i"] = _resized(t.node_i, (new["nodes"], NODE_I_COLS))
         arrays["node_f"] = _resized(t.node_f, (new["nodes"], NODE_F_COLS))
         arrays["lin"] = _resized(t.lin, (new["nodes"], t.lin.shape[1]))
         arrays["lin_x"] = _resized(t.lin_x, (new["nodes"],) + t.lin_x.shape[1:])
+        arrays["free_nodes"] = _resized(t.free_nodes, (new["nodes"],))
+        for name, shape in _detector_shapes(int(t.cfg_i[RC_DETECTOR]), new["nodes"],
+                                            int(t.cfg_i[RC_ADWIN_BUCKETS])).items():
+            arrays[name] = _resized(arrays[name], shape)
+        arrays["free_dets"] = _grown_stack(t.free_dets, int(t.state[S_FREE_DETS]),
+                                           cap["nodes"], new["nodes"])
+        state[S_FREE_DETS] += new["nodes"] - cap["nodes"]
+        events = _event_capacity(new["nodes"])
+        arrays["events_i"] = _resized(t.events_i, (events, 4))
+        arrays["events_f"] = _resized(t.events_f, (events, 2))
     if new["slots"] != cap["slots"] or new["cats"] != cap["cats"]:
         for name in SLOT_TABLES:
             shape = list(arrays[name].shape)
@@ -215,19 +346,13 @@ def grow(t: RegressorTables, nodes: int = 0, slots: int = 0, cats: int = 0,
                 shape[2] = new["cats"]
             arrays[name] = _resized(arrays[name], tuple(shape))
     if new["slots"] != cap["slots"]:
-        # new slots go under the free stack, so the order of reuse stays the same
-        top = int(t.state[S_FREE_TOP])
-        extra = np.arange(new["slots"] - 1, cap["slots"] - 1, -1, dtype=np.int64)
-        free = np.empty(new["slots"], np.int64)
-        free[:len(extra)] = extra
-        free[len(extra):len(extra) + top] = t.free_slots[:top]
-        arrays["free_slots"] = free
-        arrays["state"][S_FREE_TOP] = top + len(extra)
+        arrays["free_slots"] = _grown_stack(t.free_slots, int(t.state[S_FREE_TOP]),
+                                            cap["slots"], new["slots"])
+        state[S_FREE_TOP] += new["slots"] - cap["slots"]
     if new["cats"] != cap["cats"]:
-        arrays["child_table"], arrays["node_i"], used = _relay_children(
+        arrays["child_table"], arrays["node_i"], state[S_CHILD_USED] = _relay_children(
             arrays["child_table"], arrays["node_i"], int(t.state[S_NODES]), new["cats"],
             new["children"])
-        arrays["state"][S_CHILD_USED] = used
     elif new["children"] != cap["children"]:
         arrays["child_table"] = _resized(t.child_table, (new["children"],), -1)
     return RegressorTables(**arrays)
@@ -235,17 +360,16 @@ def grow(t: RegressorTables, nodes: int = 0, slots: int = 0, cats: int = 0,
 
 def _relay_children(table: np.ndarray, node_i: np.ndarray, n_nodes: int, cats: int,
                     capacity: int):
-    """Copy the child blocks into a new table where multiway blocks are ``cats`` wide."""
+    """A fresh child table holding the blocks of live branches only (dead and recycled
+    nodes' blocks are dropped), multiway blocks widened to ``cats`` entries."""
     node_i = node_i.copy()
     kinds = node_i[:n_nodes, KIND]
-    need = int(np.where(kinds == MULTIWAY, cats, np.where(kinds == LEAF, 0, 2)).sum())
+    live = (kinds != LEAF) & (node_i[:n_nodes, STATUS] < DEAD)
+    need = int(np.where(live, np.where(kinds == MULTIWAY, cats, 2), 0).sum())
     out = np.full(max(capacity, 2 * need + 16), -1, np.int64)
     used = 0
-    for n in range(n_nodes):
-        kind = node_i[n, KIND]
-        if kind == LEAF:
-            continue
-        width = cats if kind == MULTIWAY else 2
+    for n in np.flatnonzero(live):
+        width = cats if kinds[n] == MULTIWAY else 2
         start, count = node_i[n, CHILD_START], node_i[n, N_CHILDREN]
         out[used:used + count] = table[start:start + count]
         node_i[n, CHILD_START] = used
@@ -274,29 +398,44 @@ def check_tables(t: RegressorTables, settings: RegressionSettings,
     nodes, slots, cats = t.node_i.shape[0], t.free_slots.shape[0], t.c_stats.shape[2]
     expected = {"node_i": (nodes, NODE_I_COLS), "node_f": (nodes, NODE_F_COLS),
                 "lin": (nodes,) + fresh.lin.shape[1:], "lin_x": (nodes,) + fresh.lin_x.shape[1:],
-                "scale": fresh.scale.shape, "free_slots": (slots,)}
-    for name, shape in _slot_shapes(slots, fresh.q_stats.shape[1], fresh.c_stats.shape[1], cats,
-                                    settings.bins, int(fresh.cfg_i[RC_BUFFER])).items():
-        expected[name] = shape
+                "scale": fresh.scale.shape, "free_slots": (slots,), "free_dets": (nodes,),
+                "free_nodes": (nodes,), "events_i": (_event_capacity(nodes), 4),
+                "events_f": (_event_capacity(nodes), 2), "err_scale": fresh.err_scale.shape}
+    expected.update(_slot_shapes(slots, fresh.q_stats.shape[1], fresh.c_stats.shape[1], cats,
+                                 settings.bins, int(fresh.cfg_i[RC_BUFFER])))
+    expected.update(_detector_shapes(int(fresh.cfg_i[RC_DETECTOR]), nodes,
+                                     int(fresh.cfg_i[RC_ADWIN_BUCKETS])))
     for name, shape in expected.items():
         if getattr(t, name).shape != shape:
             raise ModelFileError(f"saved tree: table {name!r} has shape "
                                  f"{getattr(t, name).shape}, expected {shape}")
-    n_nodes, top = int(t.state[S_NODES]), int(t.state[S_FREE_TOP])
-    used = int(t.state[S_CHILD_USED])
+    s = t.state
+    n_nodes, top, used = int(s[S_NODES]), int(s[S_FREE_TOP]), int(s[S_CHILD_USED])
+    free_nodes, free_dets, events = int(s[S_FREE_NODES]), int(s[S_FREE_DETS]), int(s[S_EVENTS])
     if not (1 <= n_nodes <= nodes and 0 <= top <= slots
-            and 0 <= used <= t.child_table.shape[0]):
+            and 0 <= used <= t.child_table.shape[0] and 0 <= free_nodes <= n_nodes
+            and 0 <= free_dets <= nodes and 0 <= events <= t.events_i.shape[0]
+            and 0 <= s[S_ROOT] < n_nodes and 0 <= s[S_MAX_DEPTH]):
         raise ModelFileError("saved tree: its counters do not fit its tables")
     node_i = t.node_i[:n_nodes]
+    live = node_i[node_i[:, STATUS] < DEAD]
     children = t.child_table[:used]
+    dets = live[:, DET]
     bad = ((node_i[:, KIND] < LEAF) | (node_i[:, KIND] > EQUALS)).any() \
+        or ((node_i[:, STATUS] < MAIN) | (node_i[:, STATUS] > FREE)).any() \
         or (node_i[:, SLOT] >= slots).any() or (node_i[:, PARENT] >= n_nodes).any() \
         or (node_i[:, FEATURE] >= len(feature_kinds)).any() \
+        or (node_i[:, ALT] >= n_nodes).any() or (node_i[:, ALT_OF] >= n_nodes).any() \
+        or (node_i[:, DEPTH] > s[S_MAX_DEPTH]).any() or (node_i[:, DEPTH] < 0).any() \
         or (children >= n_nodes).any() or (t.free_slots[:top] >= slots).any() \
         or (t.free_slots[:top] < 0).any() or (t.q_meta[:, :, Q_NEDGES] >= settings.bins).any() \
         or (t.q_meta[:, :, Q_NBUF] > int(fresh.cfg_i[RC_BUFFER])).any() \
-        or (t.q_meta < 0).any()
-    branches = node_i[node_i[:, KIND] != LEAF]
+        or (t.q_meta < 0).any() \
+        or ((t.free_nodes[:free_nodes] < 0) | (t.free_nodes[:free_nodes] >= n_nodes)).any() \
+        or ((t.free_dets[:free_dets] < 0) | (t.free_dets[:free_dets] >= nodes)).any() \
+        or (dets >= nodes).any() \
+        or (fresh.cfg_i[RC_DETECTOR] != DETECTORS["off"] and (dets < 0).any())
+    branches = live[live[:, KIND] != LEAF]     # recycled ids may keep a stale block
     bad = bad or (branches[:, FEATURE] < 0).any() or (branches[:, CHILD_START] < 0).any() \
         or (branches[:, CHILD_START] + branches[:, N_CHILDREN] > used).any()
     if bad:

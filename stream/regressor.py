@@ -16,12 +16,18 @@ import dataclasses
 
 import numpy as np
 
+from .classifier import DriftEvent
 from .errors import ConfigError, ModelFileError
 from .regression_settings import RegressionSettings
-from .regression_tables import (DEPTH, S_ACTIVE, S_CHILD_USED, S_DEACTIVATED, S_LEARNED,
-                                S_LEAVES, S_NODES, S_SPLITS, RegressorTables, allocate,
+from .regression_tables import (CHILD_START, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER,
+                                EV_RECORD, EVENT_NAMES, KIND, LEAF, N_CHILDREN, S_ACTIVE,
+                                S_ALARMS, S_ALTS, S_CHILD_USED, S_DEACTIVATED, S_DROPS,
+                                S_EVENTS, S_FREE_NODES, S_LEARNED, S_LEAVES, S_NODES, S_ROOT,
+                                S_SPLITS, S_STARTS, S_SWAPS, RegressorTables, allocate,
                                 capacities, check_tables, grow)
-from .regressor_kernel import has_room, leaf_cap, learn_batch, predict_batch
+from .regressor_kernel import (has_room, leaf_cap, learn_batch, predict_batch, tree_shape,
+                               worst_case)
+from .rules import node_conditions
 
 
 @dataclasses.dataclass
@@ -61,14 +67,21 @@ class TreeRegressor:
         self.settings = settings or RegressionSettings()
         self.feature_names = list(feature_names)
         self.feature_kinds = list(feature_kinds)
+        self.events_: list[DriftEvent] = []
+        self._categories: dict[str, list[str]] = {}
         self.tables_: RegressorTables = allocate(self.settings, self.feature_kinds)
         self._category_columns = np.array(
             [j for j, k in enumerate(self.feature_kinds) if k == "category"], np.int64)
 
     # ------------------------------------------------------------------ learning
-    def learn(self, X: np.ndarray, y: np.ndarray) -> ScoredValues:
+    def learn(self, X: np.ndarray, y: np.ndarray,
+              categories: dict[str, list[str]] | None = None, *,
+              plain: bool = False) -> ScoredValues:
         """Score each row of ``X`` with the current tree, then learn it with target ``y``
-        (finite floats)."""
+        (finite floats). ``categories`` (labels per categorical feature) only names
+        category values in the paths of drift events. ``plain`` runs the general (slower)
+        form of the record loop, for tests that hold it to the written-out one."""
+        self._categories = categories or {}
         X = self._check_X(X)
         y = np.ascontiguousarray(y, dtype=np.float64)
         if y.ndim != 1 or y.shape[0] != X.shape[0]:
@@ -82,10 +95,34 @@ class TreeRegressor:
         scored = ScoredValues(np.empty(n), np.empty(n, np.int32))
         done = 0
         while True:
-            done = learn_batch(self.tables_, X, y, done, scored.pred, scored.leaf)
+            done = learn_batch(self.tables_, X, y, done, scored.pred, scored.leaf, plain)
+            self._collect_events()
             if done >= n:
                 return scored
-            self._make_room()
+            if not has_room(self.tables_):
+                self._make_room()
+
+    def take_events(self) -> list[DriftEvent]:
+        """Drift events since the last call, oldest first, as the classifier's: each with
+        the node's path as conditions, read when the event was collected (the ids of a
+        subtree swapped out or dropped are reused from the next record on, possibly
+        within the same :meth:`learn` call). ``before`` and ``after`` are mean normalised
+        absolute errors (:mod:`stream.regression_drift`)."""
+        events, self.events_ = self.events_, []
+        return events
+
+    def _collect_events(self) -> None:
+        # the kernel returns before it recycles the nodes of pending events: their paths
+        # can be read now, and only now
+        t = self.tables_
+        for e in range(int(t.state[S_EVENTS])):
+            node = int(t.events_i[e, EV_NODE])
+            self.events_.append(DriftEvent(
+                EVENT_NAMES[int(t.events_i[e, EV_KIND])], node,
+                int(t.events_i[e, EV_RECORD]), int(t.events_i[e, EV_OTHER]),
+                float(t.events_f[e, EV_BEFORE]), float(t.events_f[e, EV_AFTER]),
+                node_conditions(self, node, self._categories)))
+        t.state[S_EVENTS] = 0
 
     def predict(self, X: np.ndarray) -> ScoredValues:
         """Score rows of ``X`` without learning."""
@@ -129,17 +166,20 @@ class TreeRegressor:
             self.tables_ = grow(self.tables_, cats=max(highest + 1, 2 * capacity))
 
     def _make_room(self) -> None:
+        """Enlarge whatever table :func:`has_room` found short (doubling, at least)."""
         t = self.tables_
         cap = capacities(t)
-        width = max(2, cap["cats"])
-        leaves = int(t.state[S_LEAVES])
-        need_slots = min(leaves, leaf_cap(t)) + width + 1
+        nodes, events, children = (int(v) for v in worst_case(t))
+        nodes_free = cap["nodes"] - int(t.state[S_NODES]) + int(t.state[S_FREE_NODES])
+        need_nodes = nodes_free <= nodes or \
+            t.events_i.shape[0] - int(t.state[S_EVENTS]) <= events
+        need_slots = min(int(t.state[S_LEAVES]), leaf_cap(t)) + nodes
         self.tables_ = grow(
             t,
-            nodes=2 * cap["nodes"] + width if cap["nodes"] - t.state[S_NODES] <= width + 1 else 0,
+            nodes=2 * cap["nodes"] + nodes + events if need_nodes else 0,
             slots=max(2 * cap["slots"], need_slots) if cap["slots"] < need_slots else 0,
-            children=(2 * cap["children"] + width
-                      if cap["children"] - t.state[S_CHILD_USED] <= width else 0),
+            children=(2 * cap["children"] + children
+                      if cap["children"] - t.state[S_CHILD_USED] <= children else 0),
         )
         if not has_room(self.tables_):  # pragma: no cover - a bug, not a data condition
             raise RuntimeError("tables did not grow enough")
@@ -170,40 +210,66 @@ class TreeRegressor:
 
     # ------------------------------------------------------------------ introspection
     @property
+    def root(self) -> int:
+        """Node id of the main tree's root."""
+        return int(self.tables_.state[S_ROOT])
+
+    def main_nodes(self) -> np.ndarray:
+        """Ids of the main tree's nodes, parents before children."""
+        t = self.tables_
+        out, stack = [], [self.root]
+        while stack:
+            n = stack.pop()
+            out.append(n)
+            if t.node_i[n, KIND] != LEAF:
+                start, count = t.node_i[n, CHILD_START], t.node_i[n, N_CHILDREN]
+                stack.extend(int(c) for c in t.child_table[start:start + count][::-1]
+                             if c >= 0)
+        return np.array(out, np.int64)
+
+    @property
     def n_nodes(self) -> int:
-        return int(self.tables_.state[S_NODES])
+        """Nodes of the main tree."""
+        return int(tree_shape(self.tables_)[0])
 
     @property
     def n_leaves(self) -> int:
-        return int(self.tables_.state[S_LEAVES])
+        """Leaves of the main tree."""
+        return int(tree_shape(self.tables_)[1])
 
     @property
     def n_active_leaves(self) -> int:
+        """Leaves holding observers (alternate subtrees' included)."""
         return int(self.tables_.state[S_ACTIVE])
 
     @property
     def depth(self) -> int:
-        """Edges on the longest root-to-leaf path (0 for a lone root)."""
-        return int(self.tables_.node_i[:self.n_nodes, DEPTH].max())
+        """Edges on the longest root-to-leaf path of the main tree (0 for a lone root)."""
+        return int(tree_shape(self.tables_)[2])
 
     @property
     def records_learned(self) -> int:
         return int(self.tables_.state[S_LEARNED])
 
     def counters(self) -> dict:
-        """Growth counters: splits and leaves deactivated for the memory budget."""
+        """Growth and drift counters (the drift keys are the classifier's)."""
         s = self.tables_.state
-        return {"splits": int(s[S_SPLITS]), "deactivated": int(s[S_DEACTIVATED])}
+        return {"splits": int(s[S_SPLITS]), "deactivated": int(s[S_DEACTIVATED]),
+                "drift_alarms": int(s[S_ALARMS]), "alternates_started": int(s[S_STARTS]),
+                "alternates_swapped": int(s[S_SWAPS]), "alternates_dropped": int(s[S_DROPS]),
+                "alternates_growing": int(s[S_ALTS])}
 
 
 def warm_up() -> None:
-    """Load (or, the first time, compile) the regression kernels: every leaf model,
-    numeric and categorical features, missing values, a split and a new category."""
+    """Load (or, the first time, compile) the regression kernels: every leaf model and
+    detector, numeric and categorical features, missing values, a split and a new
+    category."""
     X = np.array([[0.5, 0.0], [0.25, 1.0], [np.nan, 1.0], [0.75, np.nan], [0.1, 2.0]])
     y = np.array([1.0, 2.0, 1.5, 0.5, 3.0])
-    for leaf_model in ("mean", "linear", "adaptive"):
+    for leaf_model, detector in (("mean", "off"), ("linear", "page_hinkley"),
+                                 ("adaptive", "adwin")):
         model = TreeRegressor(["a", "b"], ["numeric", "category"],
                               RegressionSettings(leaf_model=leaf_model, grace_period=1,
-                                                 min_branch_records=1))
+                                                 min_branch_records=1, detector=detector))
         model.learn(X, y)
         model.predict(X)

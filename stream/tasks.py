@@ -32,7 +32,9 @@ from .settings import CRITERIA, LEAF_MODELS, TreeSettings
 
 # options shared by both tasks: CLI name -> settings field
 _SHARED = {"grace_period": "grace_period", "delta": "delta", "tie_threshold": "tie_threshold",
-           "max_depth": "max_depth", "memory_mb": "memory_mb"}
+           "max_depth": "max_depth", "memory_mb": "memory_mb", "detector": "detector",
+           "adwin_delta": "adwin_delta", "page_hinkley_threshold": "page_hinkley_threshold",
+           "swap_after": "swap_after", "swap_significance": "swap_significance"}
 
 
 def classifier_settings(options: dict[str, Any]) -> TreeSettings:
@@ -92,7 +94,7 @@ class ClassificationTask:
         return self.model.settings
 
     def learn(self, X, y, encoder):
-        return self.model.learn(X, y, encoder.classes)
+        return self.model.learn(X, y, encoder.classes, encoder.categories)
 
     def predict(self, X):
         return self.model.predict(X)
@@ -157,7 +159,7 @@ class RegressionTask:
         return self.model.settings
 
     def learn(self, X, y, encoder):
-        return self.model.learn(X, y)
+        return self.model.learn(X, y, encoder.categories)
 
     def predict(self, X):
         return self.model.predict(X)
@@ -170,17 +172,20 @@ class RegressionTask:
                 "rule": np.array([rule_id(n) for n in scored.leaf], dtype=object)}
 
     def rules(self, categories: dict) -> list[Rule]:
-        from .regression_rules import format_estimate, leaf_conditions, leaf_consequents
-        from .regression_tables import DEPTH
+        from .regression_rules import (format_estimate, leaf_conditions, leaf_consequents,
+                                       leaf_drift_state)
+        from .regression_tables import CREATED, DEPTH
 
         out = []
+        node_i = self.model.tables_.node_i
         for leaf, c in leaf_consequents(self.model).items():
+            drift, replaced_at = leaf_drift_state(self.model, leaf)
             out.append(Rule(
                 id=rule_id(leaf), conditions=leaf_conditions(self.model, leaf, categories),
                 predict=None, confidence=0.0, coverage=c.coverage, records=c.records,
                 class_counts={}, scored=c.scored, hits=0,
-                depth=int(self.model.tables_.node_i[leaf, DEPTH]), created_at=0,
-                leaf_model=c.model, active=c.active,
+                depth=int(node_i[leaf, DEPTH]), created_at=int(node_i[leaf, CREATED]),
+                leaf_model=c.model, active=c.active, drift=drift, replaced_at=replaced_at,
                 estimate={**c.to_dict(), "shown": format_estimate(c)}))
         return sort_rules(out)
 
@@ -195,8 +200,7 @@ class RegressionTask:
         return {k: v for k, v in result.items() if k != "records"}
 
     def take_events(self):
-        take = getattr(self.model, "take_events", None)
-        return take() if take is not None else []
+        return self.model.take_events()
 
     def labelled(self, y) -> np.ndarray:
         return np.isfinite(y)

@@ -44,8 +44,8 @@ def test_learner_rows_cover_each_stream_and_pairing(tiny_learners):
     result, payload, markdown = tiny_learners
     rows = _rows(payload, "learners")
     assert [(r["stream"], r["pairing"]) for r in rows] == [
-        ("sea", "defaults"), ("sea", "majority"), ("agrawal", "defaults"),
-        ("agrawal", "majority")]
+        ("sea", "defaults"), ("sea", "majority"), ("sea", "with-drift"),
+        ("agrawal", "defaults"), ("agrawal", "majority"), ("agrawal", "with-drift")]
     for row in rows:
         assert row["records"] == row["stream_records"] == 2000
         assert row["ratio"] == pytest.approx(row["sapwood_rps"] / row["river_rps"])
@@ -57,7 +57,7 @@ def test_learner_rows_cover_each_stream_and_pairing(tiny_learners):
         assert check["verdict"] == ("target met" if check["met"] else check["verdict"])
         assert check["verdict"].startswith(("target met", "MISSED by "))
     assert "ratio" in result.output and "sapwood rec/s" in result.output
-    assert markdown.count("\n| sea ") == 2 and "|:---|:---|---:|" in markdown
+    assert markdown.count("\n| sea ") == 3 and "|:---|:---|---:|" in markdown
 
 
 def test_majority_pairing_sees_the_same_records_as_river(tiny_learners):
@@ -171,7 +171,7 @@ def test_markdown_table_has_one_line_per_row(monkeypatch, tmp_path):
 
 
 def test_suites_and_streams_are_registries(tmp_path):
-    assert list(bench.SUITES) == ["learners", "end-to-end", "memory"]
+    assert list(bench.SUITES) == ["learners", "drift", "regression", "end-to-end", "memory"]
     assert list(bench.STREAMS) == ["sea", "agrawal", "hyperplane", "rbf10", "rbf100", "led"]
     assert bench.STREAMS["rbf100"].min_ratio == 50 and bench.STREAMS["sea"].min_ratio == 100
     with pytest.raises(SapwoodError, match="suite must be one of"):

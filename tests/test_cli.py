@@ -558,7 +558,7 @@ def test_demo_runner_smoke(tmp_path):
         if line.startswith("  ") and len(parts) >= 2:
             places[parts[0].strip()] = Path(parts[1].strip())
     assert set(places) == {"data", "summary", "metrics log", "snapshots", "drift events",
-                           "saved model", "report"}
+                           "saved model", "report", "energy model"}
     for label, path in places.items():
         assert path.exists(), f"{label}: {path} was announced but does not exist"
     index = json.loads((places["snapshots"] / "index.json").read_text())["snapshots"]
