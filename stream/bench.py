@@ -579,8 +579,9 @@ def regression_suite(bench: Bench) -> SuiteResult:
     result = SuiteResult(
         "regression",
         f"regression: sapwood TreeRegressor vs river {river.__version__} "
-        "HoeffdingTreeRegressor / HoeffdingAdaptiveTreeRegressor (drifting streams), same "
-        "leaf model (adaptive: mean or linear, whichever errs less), prequential",
+        "HoeffdingTreeRegressor (stationary streams; sapwood without drift watching) and "
+        "HoeffdingAdaptiveTreeRegressor (drifting streams; sapwood's defaults), same leaf "
+        "model (adaptive: mean or linear, whichever errs less), prequential",
         [Column("stream", "stream", left=True), Column("records", "records", _count),
          Column("sapwood_rps", "sapwood rec/s", _count),
          Column("river_rps", "river rec/s", _count), Column("ratio", "ratio", _ratio),
@@ -593,13 +594,18 @@ def regression_suite(bench: Bench) -> SuiteResult:
              ("friedman-drift-gra", rb.friedman_drift(n, bench.seed, "gra"), True),
              ("friedman-drift-lea", rb.friedman_drift(n, bench.seed, "lea"), True),
              ("wide-friedman-50", rb.wide_friedman(n, bench.seed), False)]
+    from .regression_settings import RegressionSettings
+
     for name, stream, drifting in cases:
         bench.say(f"regression: {name} ({n:,} records)")
+        # like for like: against river's plain tree, sapwood without drift watching;
+        # against river's adaptive tree, sapwood's defaults (ADWIN at every node)
+        settings = RegressionSettings() if drifting else RegressionSettings(detector="off")
         river_model = rb.river_counterpart(None, adaptive=drifting)
         if drifting:
             river_model = tree.HoeffdingAdaptiveTreeRegressor(
                 leaf_prediction="adaptive", seed=bench.seed)
-        out = rb.compare_with_river(stream, None, river_model, clock=bench.clock)
+        out = rb.compare_with_river(stream, settings, river_model, clock=bench.clock)
         row = {"stream": name, "records": out["records"],
                "sapwood_rps": out["records"] / out["sapwood"]["seconds"],
                "river_rps": out["records"] / out["river"]["seconds"],

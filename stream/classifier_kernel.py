@@ -37,6 +37,7 @@ from .observers import (
     category_log_likelihood,
     category_update,
     gaussian_fallback_density,
+    gaussian_pooled,
     gaussian_best,
     gaussian_log_density,
     gaussian_post,
@@ -245,12 +246,19 @@ def naive_bayes_scores(counts, gauss, cats, fmap, n: int, s: int, x, n_classes: 
             continue
         j = fmap[f, FM_LOCAL]
         if fmap[f, FM_KIND] == 0:
+            pooled = False
+            pooled_mean = 0.0
+            pooled_var = 0.0
             for k in range(n_classes):
                 if counts[n, k] > 0.0:
                     if gauss[s, j, k, G_LLA] != 0.0:
                         out[k] += gaussian_log_density(gauss, s, j, k, v)
                     else:
-                        out[k] += gaussian_fallback_density(gauss, s, j, k, v, n_classes)
+                        if not pooled:   # once per feature, and only when needed
+                            pooled_mean, pooled_var = gaussian_pooled(gauss, s, j, n_classes)
+                            pooled = True
+                        out[k] += gaussian_fallback_density(gauss, s, j, k, v, pooled_mean,
+                                                            pooled_var)
         else:
             for k in range(n_classes):
                 if counts[n, k] > 0.0:

@@ -74,30 +74,36 @@ def gaussian_log_density(gauss: np.ndarray, s: int, j: int, k: int, v: float) ->
 
 
 @njit
-def gaussian_fallback_density(gauss: np.ndarray, s: int, j: int, k: int, v: float,
-                              n_classes: int) -> float:
-    """log density of ``v`` for a class without spread on feature ``j``: its own mean
-    (the leaf's when it has no value) with its squared deviations shrunk towards the
-    leaf's pooled variance by one pseudo-observation; 0 (no evidence) when the leaf has
-    no spread either."""
+def gaussian_pooled(gauss: np.ndarray, s: int, j: int, n_classes: int):
+    """(mean, variance) of feature ``j`` over every class at slot ``s``; variance 0 when
+    fewer than two values or no spread."""
     total = 0.0
     weighted = 0.0
     for c in range(n_classes):
         total += gauss[s, j, c, G_N]
         weighted += gauss[s, j, c, G_N] * gauss[s, j, c, G_MEAN]
     if total < 2.0:
-        return 0.0
-    pooled_mean = weighted / total
+        return 0.0, 0.0
+    mean = weighted / total
     m2 = 0.0
     for c in range(n_classes):
-        d = gauss[s, j, c, G_MEAN] - pooled_mean
+        d = gauss[s, j, c, G_MEAN] - mean
         m2 += gauss[s, j, c, G_M2] + gauss[s, j, c, G_N] * d * d
-    pooled = m2 / (total - 1.0)
-    if pooled <= 0.0:
+    return mean, max(m2 / (total - 1.0), 0.0)
+
+
+@njit
+def gaussian_fallback_density(gauss: np.ndarray, s: int, j: int, k: int, v: float,
+                              pooled_mean: float, pooled_var: float) -> float:
+    """log density of ``v`` for a class without spread on feature ``j``: its own mean
+    (the leaf's when it has no value) with its squared deviations shrunk towards the
+    leaf's pooled variance (:func:`gaussian_pooled`) by one pseudo-observation; 0 (no
+    evidence) when the leaf has no spread either."""
+    if pooled_var <= 0.0:
         return 0.0
     n = gauss[s, j, k, G_N]
     mean = gauss[s, j, k, G_MEAN] if n > 0.0 else pooled_mean
-    var = (gauss[s, j, k, G_M2] + pooled) / max(n, 1.0)
+    var = (gauss[s, j, k, G_M2] + pooled_var) / max(n, 1.0)
     d = v - mean
     return -d * d / (2.0 * var) - _HALF_LOG_TAU - 0.5 * math.log(var)
 
