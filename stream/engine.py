@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from connectors.base import RawBatch
+from connectors.broker_payloads import redacted
 from connectors.quarantine import QuarantineWriter
 from connectors.sources import open_sources
 
@@ -334,7 +335,8 @@ class LearnRun:
             if batch.times is not None and 0 <= index < len(batch.times) \
                     and np.isfinite(batch.times[index]):
                 when = _iso(float(batch.times[index]))
-            conditions = node_conditions(self.model, event.node, self.encoder.categories)
+            conditions = event.path if getattr(event, "path", None) is not None else \
+                node_conditions(self.model, event.node, self.encoder.categories)
             row = {
                 "record": event.record + 1, "time": when or _iso(self.wall()),
                 "time_source": "data" if when else "clock", "kind": event.kind,
@@ -460,7 +462,7 @@ class LearnRun:
             "tree": self._tree_facts() if m else None,
             "schema": self.schema.to_dict() if self.schema else None,
             "unknown_fields": dict(self.encoder.unknown_fields) if self.encoder else {},
-            "sources": list(self.job.sources),
+            "sources": [redacted(spec) for spec in self.job.sources],
             "outputs": {
                 "quarantine": self.quarantine.path if self.quarantine.count else None,
                 "snapshots": self.job.snapshot_dir if self.snapshots_written else None,
