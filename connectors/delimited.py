@@ -70,6 +70,10 @@ MAX_RECORD_BYTES = 1 << 25
 MAX_TEXT_CHARS = 200
 """Raw text of a bad record is cut to this many characters in its Reject."""
 
+MARK_BYTES = 64
+"""Bytes just before a position kept with it, to tell on resuming that the file there
+still holds what was read (not a rewritten file with the same name and inode)."""
+
 _BOM = b"\xef\xbb\xbf"
 _MIN_BLOCK = 1 << 12
 _MAX_BLOCK = 1 << 24
@@ -96,7 +100,7 @@ class LineStream:
 
     ``pending`` holds bytes read but not yet handed out; ``line`` is the physical line
     the next bytes handed out start on (callers advance it). A leading UTF-8 byte order
-    mark is dropped.
+    mark is dropped (only at offset 0).
 
     Parameters
     ----------
@@ -104,27 +108,42 @@ class LineStream:
         Anything with ``read(n)``. A stream with a true ``live`` attribute may return
         fewer bytes than asked while more will come; the reader then works on what it
         has instead of waiting (standard input from a live producer).
+    offset, line
+        Where ``stream`` already stands: its byte offset and the physical line that
+        starts there (a resumed stream).
     """
 
-    def __init__(self, stream: BinaryIO) -> None:
+    def __init__(self, stream: BinaryIO, offset: int = 0, line: int = 1) -> None:
         self._stream = stream
         self.live = _short_read_means_pause(stream)
         self.pending = b""
         self.eof = False
-        self.line = 1
-        self._at_start = True
+        self.line = line
+        self._consumed = offset
+        self._at_start = offset == 0
+
+    @property
+    def offset(self) -> int:
+        """Byte offset in the stream of the first byte not handed out yet (a checkpoint
+        resumes there); the byte order mark counts."""
+        return self._consumed - len(self.pending)
+
+    def _raw_read(self, size: int) -> bytes:
+        data = self._stream.read(size)
+        self._consumed += len(data)
+        return data
 
     def _read(self, size: int) -> bytes:
-        data = self._stream.read(size)
+        data = self._raw_read(size)
         if self._at_start and data:
             while len(data) < len(_BOM):
-                more = self._stream.read(len(_BOM) - len(data))
+                more = self._raw_read(len(_BOM) - len(data))
                 if not more:
                     break
                 data += more
             self._at_start = False
             if data.startswith(_BOM):
-                data = data[len(_BOM):] or self._stream.read(size)
+                data = data[len(_BOM):] or self._raw_read(size)
         if not data:
             self.eof = True
         return data
@@ -331,14 +350,30 @@ class DelimitedReader:
         Background threads parsing chunks ahead of the consumer (pandas' parser
         releases the GIL); 0 parses in the consumer's thread. Live input is always
         parsed in the consumer's thread, so no batch waits for a later read.
+    resume
+        A position of an earlier batch (``offset``, ``line``, ``mark``, ``columns``,
+        ``header_line``): the stream ``opener`` returns already stands at ``offset``,
+        the header is taken from here and not read again.
+    known_columns
+        Columns of an earlier file of the same feed (a followed file that was rotated
+        or truncated): if the first record names exactly these columns it is the
+        header, otherwise the file has no header and all its lines are records.
+
+    Each batch carries ``position``: ``offset`` (of the next unread byte), ``line``
+    (the physical line that starts there), ``mark`` (hex of up to ``MARK_BYTES``
+    bytes before the offset), ``columns`` and ``header_line``.
     """
 
     delimiter = ","
     extensions: tuple[str, ...] = ()
 
     def __init__(self, opener: Callable[[], BinaryIO], origin: str,
-                 batch_rows: int = 65536, threads: int = PARSE_THREADS) -> None:
+                 batch_rows: int = 65536, threads: int = PARSE_THREADS,
+                 resume: dict | None = None, known_columns: list[str] | None = None) -> None:
         self.name = origin
+        self._resume = resume
+        self._known = list(known_columns) if known_columns is not None else None
+        self._mark = b""
         self._opener = opener
         self._batch_rows = int(batch_rows)
         self._threads = max(0, int(threads))
@@ -370,6 +405,13 @@ class DelimitedReader:
             return
         self._started = True
         self._stream = self._opener()
+        if self._resume is not None:
+            at = self._resume
+            self._lines = LineStream(self._stream, int(at["offset"]), int(at["line"]))
+            self._columns = [str(c) for c in at["columns"]]
+            self.header_line = at.get("header_line")
+            self._mark = bytes.fromhex(at.get("mark", ""))
+            return
         src = self._lines = LineStream(self._stream)
         src.fill(_MIN_BLOCK * 16)
         while True:
@@ -391,12 +433,33 @@ class DelimitedReader:
         header = src.pending[int(rec.starts[0]):int(rec.ends[0])]
         names = pd.read_csv(io.BytesIO(header), sep=self.delimiter, nrows=0,
                             index_col=False, encoding_errors="replace").columns
-        if len(names) != int(rec.fields[0]):
+        if self._known is not None:
+            if [str(c) for c in names] != self._known or len(names) != int(rec.fields[0]):
+                # no header: the first line is a record under the feed's columns
+                self._columns = list(self._known)
+                skipped = int(rec.starts[0])
+                self._note_used(src.pending[:skipped])
+                src.consume(skipped, int(rec.lines[0]) - src.line)
+                return
+        elif len(names) != int(rec.fields[0]):
             raise InputError(f"cannot read {self.name!r}: the header on line "
                              f"{int(rec.lines[0])} could not be split into fields")
         self._columns = [str(c) for c in names]
         self.header_line = int(rec.lines[0])
+        self._note_used(src.pending[:int(rec.nexts[0])])
         src.consume(int(rec.nexts[0]), next_line - src.line)
+
+    def _note_used(self, data) -> None:
+        """Keep the last ``MARK_BYTES`` bytes handed out (the mark of the next position)."""
+        if len(data) >= MARK_BYTES:
+            self._mark = bytes(data[len(data) - MARK_BYTES:])
+        elif len(data):
+            self._mark = (self._mark + bytes(data))[-MARK_BYTES:]
+
+    def _position(self) -> dict:
+        src = self._lines
+        return {"offset": src.offset, "line": src.line, "mark": self._mark.hex(),
+                "columns": list(self._columns), "header_line": self.header_line}
 
     # -- batches -----------------------------------------------------------------------
 
@@ -460,7 +523,9 @@ class DelimitedReader:
                         self._batch_rows, False
                 src.line += breaks
                 self._learn_line_size(len(chunk), breaks)
-                yield functools.partial(self._plain_job, chunk, first, final, records)
+                self._note_used(chunk)
+                yield functools.partial(self._plain_job, chunk, first, final, records,
+                                        self._position())
                 continue
             found = self._scan(chunk, final, first, self._records,
                                force=len(chunk) > MAX_RECORD_BYTES)
@@ -472,7 +537,8 @@ class DelimitedReader:
             src.give_back(chunk[used:])
             src.line += used_lines
             self._learn_line_size(used, used_lines)
-            yield functools.partial(self._records_job, chunk, records)
+            self._note_used(memoryview(chunk)[:used])
+            yield functools.partial(self._records_job, chunk, records, self._position())
 
     def _learn_line_size(self, used: int, lines: int) -> None:
         if lines:
@@ -488,16 +554,17 @@ class DelimitedReader:
         return pd.DataFrame({name: pd.Series([], dtype=object) for name in self._columns})
 
     def _plain_job(self, chunk: bytes, first: int, final: bool,
-                   records: int) -> RawBatch | None:
+                   records: int, position: dict | None = None) -> RawBatch | None:
         """Parse a chunk without quotes: the fast path, else the scanner on it."""
         fast = self._fast(chunk, first, records)
         if fast is not None:
+            fast.position = position
             return fast
         found = self._scan(chunk, final, first, _Records(chunk.count(b"\n") + 1))
         if found is None or found[1] != len(chunk):  # impossible without quotes
             raise InputError(f"cannot read {self.name!r}: records from line {first} "
                              "could not be split consistently")
-        return self._records_job(chunk, found[0])
+        return self._records_job(chunk, found[0], position)
 
     def _fast(self, chunk: bytes, first: int, records: int) -> RawBatch | None:
         width = len(self._columns)
@@ -553,7 +620,8 @@ class DelimitedReader:
                    scratch.nexts[:k][good], scratch.lines[:k][good], fields[good], rejects)
         return records, pos, next_line - first
 
-    def _records_job(self, chunk: bytes, records) -> RawBatch | None:
+    def _records_job(self, chunk: bytes, records,
+                     position: dict | None = None) -> RawBatch | None:
         """Parse the good records the scanner found; rejects ride along."""
         starts, _, nexts, lines, _, rejects = records
         kept = len(starts)
@@ -574,7 +642,7 @@ class DelimitedReader:
             frame = self._empty()
         if not kept and not rejects:
             return None
-        return RawBatch(frame, self.name, lines, rejects)
+        return RawBatch(frame, self.name, lines, rejects, position)
 
 
 class CsvReader(DelimitedReader):

@@ -27,7 +27,7 @@ import pandas as pd
 from stream.errors import InputError
 
 from .base import RawBatch, Reject
-from .delimited import MAX_RECORD_BYTES, LineStream, raw_text
+from .delimited import MARK_BYTES, MAX_RECORD_BYTES, LineStream, raw_text
 
 _NESTED = (list, dict)
 _MIN_BLOCK = 1 << 12
@@ -46,13 +46,25 @@ class JsonLinesReader:
         Name used in batches and rejects.
     batch_rows
         Most lines per batch.
+    resume
+        A position of an earlier batch (``offset``, ``line``, ``mark``): the stream
+        ``opener`` returns already stands at ``offset``.
+    known_columns
+        Ignored (JSON Lines has no header); accepted so every reader takes the same
+        arguments.
+
+    Each batch carries ``position``: ``offset`` (of the next unread byte), ``line`` (the
+    physical line that starts there) and ``mark`` (hex of up to ``MARK_BYTES`` bytes
+    before the offset).
     """
 
     extensions = (".jsonl", ".ndjson")
 
     def __init__(self, opener: Callable[[], BinaryIO], origin: str,
-                 batch_rows: int = 65536) -> None:
+                 batch_rows: int = 65536, resume: dict | None = None,
+                 known_columns: list[str] | None = None) -> None:
         self.name = origin
+        self._resume = resume
         self._opener = opener
         self._batch_rows = int(batch_rows)
         self._stream: BinaryIO | None = None
@@ -72,7 +84,9 @@ class JsonLinesReader:
         """Yield batches of at most ``batch_rows`` lines until the stream ends."""
         if self._stream is None:
             self._stream = self._opener()
-        src = LineStream(self._stream)
+        at = self._resume or {}
+        src = LineStream(self._stream, int(at.get("offset", 0)), int(at.get("line", 1)))
+        mark = bytes.fromhex(at.get("mark", ""))
         want = 0
         while True:
             target = want or int(min(max(self._batch_rows * self._bytes_per_line,
@@ -90,16 +104,19 @@ class JsonLinesReader:
             lines = chunk.split(b"\n")
             if lines[-1] == b"":
                 lines.pop()  # the chunk ended with a line break
+            used = len(chunk)
             if len(lines) > self._batch_rows:
                 lines = lines[:self._batch_rows]
                 used = sum(map(len, lines)) + len(lines)
                 src.give_back(chunk[used:])
+            mark = (mark + chunk[max(0, used - MARK_BYTES):used])[-MARK_BYTES:]
             first = src.line
             src.line += len(lines)
             self._bytes_per_line = max(len(chunk) / len(lines), 1.0)
             frame, numbers, rejects = self._decode(lines, first)
             if len(frame) or rejects:
-                yield RawBatch(frame, self.name, numbers, rejects)
+                yield RawBatch(frame, self.name, numbers, rejects,
+                               {"offset": src.offset, "line": src.line, "mark": mark.hex()})
 
     def _decode(self, lines: list[bytes], first: int):
         stripped = [line.strip() for line in lines]

@@ -2,7 +2,11 @@
 
 Inside: ``FORMATS`` (format name -> reader class; the CLI takes its choices from it),
 :func:`format_of` (format from a file name), :func:`sniff_format` (format from the first
-bytes of standard input), and :func:`open_sources`, which chains several inputs.
+bytes of standard input), and :func:`open_sources`, which chains several inputs (and, in
+follow mode, reads the last one on as it grows) or opens a broker source.
+
+Every batch of a file carries its ``position`` (see :class:`ChainedSource`), from which
+:meth:`ChainedSource.seek` resumes after a restart.
 
 Gzip is recognised by its magic bytes (1f 8b, RFC 1952), whatever the file is called.
 Files are checked for readability when the source is opened, so a typo fails at once;
@@ -12,19 +16,24 @@ they are then opened one at a time, when their turn comes.
 from __future__ import annotations
 
 import gzip
+import logging
 import os
 import select
 import stat
 import sys
 import zlib
-from typing import BinaryIO, Iterator
+from typing import BinaryIO, Callable, Iterator
 
 from stream.errors import ConfigError, InputError, SchemaError
 from stream.settings import require_int
 
 from .base import RawBatch, Source
 from .delimited import CsvReader, TsvReader
+from .follow import (FileRestarted, FollowControl, GrowingFile, content_matches,
+                     find_by_identity, identity)
 from .jsonlines import JsonLinesReader
+
+log = logging.getLogger("sapwood.connectors")
 
 FORMATS = {
     "csv": CsvReader,
@@ -175,14 +184,125 @@ def _open_file(path: str) -> BinaryIO:
 # inputs and the chained source
 # ---------------------------------------------------------------------------------------
 
+def _reader_position(position: dict | None) -> dict | None:
+    """The part of a source position a reader resumes from."""
+    if position is None:
+        return None
+    return {k: position[k] for k in ("offset", "line", "mark", "columns", "header_line")
+            if k in position}
+
+
 class _FileInput:
+    """One named file, read to its end."""
+
     def __init__(self, path: str, fmt: str) -> None:
         self.origin = path
         self._format = fmt
 
-    def reader(self, batch_rows: int):
+    def batches(self, index: int, batch_rows: int, resume: dict | None,
+                check: Callable[[str, list[str]], None]) -> Iterator[RawBatch]:
         path = self.origin
-        return FORMATS[self._format](lambda: _open_file(path), path, batch_rows)
+        stream = _open_file(path)
+        try:
+            if resume is not None and not content_matches(
+                    stream, int(resume["offset"]), bytes.fromhex(resume.get("mark", ""))):
+                raise ConfigError(
+                    f"{path!r} is not the file the checkpoint was taken from: it no longer "
+                    f"holds the bytes read up to offset {int(resume['offset'])} (it was "
+                    f"replaced or shortened); remove the checkpoint to learn it from the "
+                    f"start")
+            reader = FORMATS[self._format](lambda: stream, path, batch_rows,
+                                           resume=_reader_position(resume))
+            if reader.columns is not None:
+                check(path, reader.columns)
+            fd = stream.fileno()
+            for batch in reader.batches():
+                st = os.fstat(fd)
+                batch.position = {"input": index, "path": path, "device": st.st_dev,
+                                  "inode": st.st_ino, "size": st.st_size, **batch.position}
+                yield batch
+        finally:
+            stream.close()
+
+
+class _FollowedInput:
+    """The last named file in follow mode: read on as it grows, across rotations and
+    truncations (see :mod:`connectors.follow`)."""
+
+    def __init__(self, path: str, fmt: str, control: FollowControl) -> None:
+        self.origin = path
+        self._format = fmt
+        self.control = control
+        self.restarts = 0
+
+    def batches(self, index: int, batch_rows: int, resume: dict | None,
+                check: Callable[[str, list[str]], None]) -> Iterator[RawBatch]:
+        path = self.origin
+        known = list(resume["columns"]) if resume and resume.get("columns") else None
+        handle, offset, mark = self._resume(resume)
+        at = resume if offset else None
+        while True:
+            stream = GrowingFile(path, self.control, handle, offset, mark)
+            reader = FORMATS[self._format](lambda ready=stream: ready, path, batch_rows,
+                                           resume=_reader_position(at), known_columns=known)
+            try:
+                if reader.columns is not None:
+                    check(path, reader.columns)
+                    known = reader.columns
+                device, inode = stream.identity
+                for batch in reader.batches():
+                    batch.position = {"input": index, "path": path, "device": device,
+                                      "inode": inode, "size": os.fstat(stream.fileno()).st_size,
+                                      **batch.position}
+                    yield batch
+                if not stream.rotated:  # pragma: no cover - a growing file never ends
+                    return
+                log.info("%s was rotated; reading the new file from its start", path)
+            except FileRestarted:
+                log.warning("%s was truncated or rewritten; reading it from its start", path)
+            finally:
+                stream.close()
+            self.restarts += 1
+            handle, offset, mark, at = self._open_new(), 0, b"", None
+
+    def _open_new(self):
+        while True:
+            try:
+                return open(self.origin, "rb", buffering=0)
+            except FileNotFoundError:
+                self.control.check()
+                self.control.wait()
+
+    def _resume(self, resume: dict | None):
+        """(handle, offset, mark) to go on from a checkpoint's position."""
+        if resume is None:
+            return self._open_new(), 0, b""
+        path = self.origin
+        offset, mark = int(resume["offset"]), bytes.fromhex(resume.get("mark", ""))
+        wanted = (int(resume["device"]), int(resume["inode"]))
+        candidates = []
+        try:
+            if identity(os.stat(path)) == wanted:
+                candidates.append(path)
+        except FileNotFoundError:
+            pass
+        if not candidates:
+            moved = find_by_identity(path, wanted)
+            if moved is not None:
+                log.info("%s was rotated while sapwood was stopped; finishing %s first",
+                         path, moved)
+                candidates.append(moved)
+            elif os.path.exists(path):
+                candidates.append(path)  # a copy or restore holds the same bytes
+        for candidate in candidates:
+            handle = open(candidate, "rb", buffering=0)
+            if content_matches(handle, offset, mark):
+                return handle, offset, mark
+            handle.close()
+        log.warning("%s: the file the checkpoint was reading (offset %d) is gone or was "
+                    "truncated; reading %s from its start (lines written to the old file "
+                    "after the checkpoint are lost)", path, offset, path)
+        return self._open_new(), 0, b""
 
 
 class _StdinInput:
@@ -207,40 +327,92 @@ class _StdinInput:
         ready = stream
         return FORMATS[fmt](lambda: ready, STDIN, batch_rows)
 
+    def batches(self, index: int, batch_rows: int, resume: dict | None,
+                check: Callable[[str, list[str]], None]) -> Iterator[RawBatch]:
+        reader = self.reader(batch_rows)
+        try:
+            if reader.columns is not None:
+                check(STDIN, reader.columns)
+            for batch in reader.batches():
+                batch.position = None  # standard input cannot be read again
+                yield batch
+        finally:
+            reader.close()
+
 
 class ChainedSource:
-    """Several inputs read one after the other, as one :class:`~connectors.base.Source`.
+    """Several inputs read one after the other, as one resumable source.
 
     Delimited inputs must share their columns; the first that differs raises SchemaError.
+    Each batch's ``position`` names the input (``input``: its index, ``path``), the
+    file's identity and size when the batch was read (``device``, ``inode``, ``size``)
+    and the reader's place in it (``offset`` of the next unread byte, ``line``, ``mark``,
+    and for delimited files ``columns`` and ``header_line``); None for standard input.
+    :meth:`seek` with such a position makes :meth:`batches` go on just after it.
     """
 
     def __init__(self, inputs: list, batch_rows: int) -> None:
         self._inputs = inputs
         self._batch_rows = batch_rows
-        self._current = None
+        self._resume: dict | None = None
+        self._iterating = None
         self.name = ", ".join(inp.origin for inp in inputs)
 
+    @property
+    def resumable(self) -> bool:
+        """False when standard input is among the inputs."""
+        return not any(isinstance(inp, _StdinInput) for inp in self._inputs)
+
+    def seek(self, position: dict) -> None:
+        """Go on after ``position`` (a batch position of this same list of inputs)."""
+        try:
+            index = int(position["input"])
+            int(position["offset"]), int(position["line"])
+        except (KeyError, TypeError, ValueError):
+            raise ConfigError(f"the checkpoint's source position is not a file position: "
+                              f"{position!r}") from None
+        if not 0 <= index < len(self._inputs) or \
+                self._inputs[index].origin != position.get("path"):
+            raise ConfigError(f"the checkpoint was reading {position.get('path')!r} as input "
+                              f"{index + 1}, which is not among this run's sources")
+        self._resume = dict(position)
+
+    def commit(self, position: dict) -> None:
+        """Files need no acknowledgement: a checkpoint's position is all they need."""
+
     def batches(self) -> Iterator[RawBatch]:
-        reference: tuple[str, list[str]] | None = None
-        for inp in self._inputs:
+        """Yield the batches of every input in order (after the :meth:`seek` position)."""
+        self.close()
+        self._iterating = self._batches()
+        return self._iterating
+
+    def _batches(self) -> Iterator[RawBatch]:
+        reference: list[tuple[str, list[str]]] = []
+        resume, first = self._resume, 0
+        if resume is not None:
+            first = int(resume["input"])
+            if resume.get("columns"):
+                reference.append((resume["path"], list(resume["columns"])))
+
+        def check(origin: str, columns: list[str]) -> None:
+            if not reference:
+                reference.append((origin, columns))
+            else:
+                _check_same_columns(reference[0], (origin, columns))
+
+        for index in range(first, len(self._inputs)):
+            inp = self._inputs[index]
+            at = resume if index == first else None
             try:
-                reader = self._current = inp.reader(self._batch_rows)
-                columns = reader.columns
-                if columns is not None:
-                    if reference is None:
-                        reference = (inp.origin, columns)
-                    else:
-                        _check_same_columns(reference, (inp.origin, columns))
-                yield from reader.batches()
+                yield from inp.batches(index, self._batch_rows, at, check)
             except _READ_ERRORS as exc:
                 raise input_error(inp.origin, exc) from exc
-            finally:
-                self.close()
 
     def close(self) -> None:
-        if self._current is not None:
-            current, self._current = self._current, None
-            current.close()
+        """Stop the iteration under way (its open file is closed); safe to call twice."""
+        if self._iterating is not None:
+            iterating, self._iterating = self._iterating, None
+            iterating.close()
 
 
 def _check_same_columns(first: tuple[str, list[str]], later: tuple[str, list[str]]) -> None:
@@ -259,13 +431,15 @@ def _check_same_columns(first: tuple[str, list[str]], later: tuple[str, list[str
 
 
 def open_sources(specs: list[str], fmt: str | None = None, batch_rows: int = 65536,
-                 stdin: BinaryIO | None = None) -> Source:
+                 stdin: BinaryIO | None = None, follow: FollowControl | None = None) -> Source:
     """One source reading ``specs`` in order (``-`` is standard input).
 
     Parameters
     ----------
     specs
-        File names, or ``-`` (at most once) for standard input.
+        File names, or ``-`` (at most once) for standard input; or one broker URL
+        (``mqtt://``, ``mqtts://``, ``redis://``, ``rediss://``, see
+        :mod:`connectors.broker_payloads`).
     fmt
         A key of ``FORMATS`` for every input; by default from each file's extension,
         and sniffed for standard input.
@@ -273,6 +447,9 @@ def open_sources(specs: list[str], fmt: str | None = None, batch_rows: int = 655
         Most records per batch.
     stdin
         Stream read for ``-`` instead of ``sys.stdin.buffer`` (bytes).
+    follow
+        Follow mode: the last file is read on as it grows, is rotated or truncated,
+        until ``follow`` says stop (see :mod:`connectors.follow`).
 
     Raises
     ------
@@ -284,13 +461,21 @@ def open_sources(specs: list[str], fmt: str | None = None, batch_rows: int = 655
     specs = list(specs)
     if not specs:
         raise ConfigError("give at least one source (a file name, or - for standard input)")
+    broker = _open_broker(specs, batch_rows)
+    if broker is not None:
+        if follow is not None:
+            raise ConfigError("follow mode is for files; a broker source is live already")
+        return broker
     if fmt is not None and fmt not in FORMATS:
         raise ConfigError(f"format must be one of {', '.join(sorted(FORMATS))}, got {fmt!r}")
     batch_rows = require_int("batch rows", batch_rows, 1)
     if specs.count(STDIN) > 1:
         raise ConfigError("standard input ('-') can be given only once")
+    if follow is not None and specs[-1] == STDIN:
+        raise ConfigError("follow mode reads a growing file; standard input is read to "
+                          "its end anyway, give a file name")
     inputs = []
-    for spec in specs:
+    for i, spec in enumerate(specs):
         if spec == STDIN:
             inputs.append(_StdinInput(stdin, fmt))
             continue
@@ -298,9 +483,32 @@ def open_sources(specs: list[str], fmt: str | None = None, batch_rows: int = 655
         if name is None:
             raise ConfigError(f"cannot tell the format of {spec!r} from its name; "
                               f"give one of {', '.join(sorted(FORMATS))}")
+        followed = follow is not None and i == len(specs) - 1
         try:
-            open(spec, "rb").close()
+            with open(spec, "rb") as probe:
+                packed = probe.read(2) == _GZIP_MAGIC
+        except FileNotFoundError as exc:
+            if followed:  # a followed file may appear later
+                inputs.append(_FollowedInput(spec, name, follow))
+                continue
+            raise input_error(spec, exc) from exc
         except OSError as exc:
             raise input_error(spec, exc) from exc
-        inputs.append(_FileInput(spec, name))
+        if followed:
+            if packed:
+                raise ConfigError(f"follow mode reads plain text as it grows; {spec!r} is "
+                                  f"gzip-compressed")
+            inputs.append(_FollowedInput(spec, name, follow))
+        else:
+            inputs.append(_FileInput(spec, name))
     return ChainedSource(inputs, batch_rows)
+
+
+def _open_broker(specs: list[str], batch_rows: int) -> Source | None:
+    """The broker source when ``specs`` names one (the broker module is imported only
+    when a spec looks like a URL)."""
+    if not any("://" in spec for spec in specs):
+        return None
+    from .broker_payloads import open_broker_sources
+
+    return open_broker_sources(specs, batch_rows)
