@@ -27,6 +27,7 @@ import dataclasses
 import io
 import json
 import logging
+import os
 import random
 import re
 from typing import Any, Callable, Iterable, Sequence, TypeVar
@@ -194,6 +195,22 @@ class Options:
     def text(self, name: str, default: str | None = None) -> str | None:
         value = self.raw(name)
         return default if value is None else str(value)
+
+    def password(self, default: str | None) -> str | None:
+        """The password: option ``password``, else the environment variable named by
+        ``password_env`` (keeps it out of the command line, which other users of the
+        machine can list), else ``default`` (the URL's)."""
+        given = self.text("password")
+        variable = self.text("password_env")
+        if given is not None and variable is not None:
+            raise ConfigError(f"give password or password_env, not both "
+                              f"(in {self._display!r})")
+        if variable is not None:
+            if variable not in os.environ:
+                raise ConfigError(f"password_env names {variable!r}, which is not set "
+                                  f"(in {self._display!r})")
+            return os.environ[variable]
+        return default if given is None else given
 
     def number(self, name: str, default: float | None, minimum: float = 0.0) -> float | None:
         value = self.raw(name)

@@ -117,7 +117,8 @@ class MqttSource:
         ``topic`` (more filters), ``format`` (json, csv), ``columns`` (csv field names,
         comma-separated), ``protocol`` (5, 3.1.1), ``session_expiry`` (s, 5.0),
         ``receive_max`` (unacknowledged messages the broker may send), ``keepalive``
-        (s), ``username``, ``password``, ``ca``, ``cert``, ``key`` (TLS files),
+        (s), ``username``, ``password`` (or ``password_env``, the name of an
+        environment variable holding it), ``ca``, ``cert``, ``key`` (TLS files),
         ``tls_insecure`` (skip the host name check), ``linger`` (s to wait for a fuller
         batch, default 0.2), ``idle_exit`` (end after this many s without a message;
         default never), ``max_bytes`` (message size limit, default 1 MiB), ``retry``
@@ -168,7 +169,7 @@ class MqttSource:
         self._receive_max = opts.whole("receive_max", default_window, 1, 65535)
         self._keepalive = opts.whole("keepalive", 60, 5, 65535)
         self._username = opts.text("username", address.username)
-        self._password = opts.text("password", address.password)
+        self._password = opts.password(address.password)
         self._tls = address.scheme == "mqtts"
         self._ca = opts.text("ca")
         self._cert = opts.text("cert")

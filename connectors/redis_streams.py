@@ -114,7 +114,8 @@ class RedisStreamSource:
         without an entry; 0 ends when the stream is drained; default never),
         ``max_bytes`` (entry size limit, default 1 MiB), ``retry`` (s to keep
         reconnecting before giving up, default 300), ``connect_timeout`` (s),
-        ``username``, ``password``, ``ca``, ``cert``, ``key``, ``tls_insecure``.
+        ``username``, ``password`` (or ``password_env``, the name of an environment
+        variable holding it), ``ca``, ``cert``, ``key``, ``tls_insecure``.
 
     Attributes
     ----------
@@ -166,7 +167,7 @@ class RedisStreamSource:
         self._retry = opts.number("retry", 300.0)
         self._connect_timeout = opts.number("connect_timeout", 10.0, 0.1)
         self._username = opts.text("username", address.username)
-        self._password = opts.text("password", address.password)
+        self._password = opts.password(address.password)
         self._ca = opts.text("ca")
         self._cert = opts.text("cert")
         self._key = opts.text("key")

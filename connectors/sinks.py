@@ -55,7 +55,8 @@ class MqttPredictionSink:
 
     Options: ``qos`` (0 or 1, default 1), ``retain`` (default false), ``client_id``
     (default: one the broker assigns), ``protocol`` (5, 3.1.1), ``username``,
-    ``password``, ``ca``, ``cert``, ``key``, ``tls_insecure``, ``timeout`` (s to wait for
+    ``password`` (or ``password_env``, the name of an environment variable holding it),
+    ``ca``, ``cert``, ``key``, ``tls_insecure``, ``timeout`` (s to wait for
     the broker's acknowledgements of one frame, default 30).
     """
 
@@ -72,7 +73,7 @@ class MqttPredictionSink:
         client_id = opts.text("client_id", "")
         protocol = opts.choice("protocol", "5", ("5", "3.1.1"))
         username = opts.text("username", address.username)
-        password = opts.text("password", address.password)
+        password = opts.password(address.password)
         ca, cert, key = opts.text("ca"), opts.text("cert"), opts.text("key")
         insecure = opts.flag("tls_insecure", False)
         self._timeout = opts.number("timeout", 30.0, 0.1)
@@ -147,7 +148,8 @@ class RedisPredictionSink:
     """Predictions appended to a Redis stream, one entry per record.
 
     Options: ``stream`` (required), ``maxlen`` (trim to about this many entries),
-    ``username``, ``password``, ``ca``, ``cert``, ``key``, ``tls_insecure``,
+    ``username``, ``password`` (or ``password_env``, the name of an environment variable
+    holding it), ``ca``, ``cert``, ``key``, ``tls_insecure``,
     ``timeout`` (socket timeout in s, default 30).
     """
 
@@ -161,7 +163,7 @@ class RedisPredictionSink:
                               f"to {self.name!r}")
         self._maxlen = opts.whole("maxlen", None, 1)
         username = opts.text("username", address.username)
-        password = opts.text("password", address.password)
+        password = opts.password(address.password)
         ca, cert, key = opts.text("ca"), opts.text("cert"), opts.text("key")
         insecure = opts.flag("tls_insecure", False)
         timeout = opts.number("timeout", 30.0, 0.1)

@@ -179,19 +179,66 @@ def cli() -> None:
                    "swapped in, dropped; with record, time and where in the tree).")
 @click.option("--batch-rows", type=int, default=65536, show_default=True,
               help="Records read per batch (memory vs. call overhead; results are equal).")
+@click.option("--checkpoint", "checkpoint_path", type=click.Path(dir_okay=False),
+              help="Keep the run's whole state in this file; the same command resumes "
+                   "from it after a stop or crash (the previous one is kept as FILE.prev).")
+@click.option("--checkpoint-every", type=int, default=None,
+              help="Records between checkpoints [100000]; 0 for none.")
+@click.option("--checkpoint-seconds", type=float, default=None,
+              help="Also checkpoint when this many seconds have passed [60]; 0 for none.")
+@click.option("--follow", is_flag=True,
+              help="Keep reading the last SOURCE as it grows, across rotation and "
+                   "truncation, until SIGINT/SIGTERM (which checkpoint, then exit 0).")
+@click.option("--poll-seconds", type=float, default=0.5, show_default=True,
+              help="With --follow: how often a quiet file is checked.")
+@click.option("--idle-exit", type=float, default=None,
+              help="With --follow: end after this many seconds without new records.")
+@click.option("--labels", "label_sources", multiple=True, metavar="SOURCE",
+              help="Labels that arrive later: rows of id, target and time, joined to "
+                   "the records by id; repeatable.")
+@click.option("--label-window", type=int, default=None,
+              help="Records a record waits for its label before it is dropped [10000].")
+@click.option("--label-seconds", type=float, default=None,
+              help="Also drop a record whose label has not come within this many "
+                   "seconds of data time.")
+@click.option("--id-field", default=None,
+              help="The field that identifies a record, for joining labels (when the "
+                   "schema has no id field).")
 @click.option("--quiet", "-q", is_flag=True, help="No closing report on stderr.")
 @_tree_options
 def learn(sources, target, task, fmt, schema_path, kinds, summary_path, save_path,
           snapshot_dir, snapshot_every, snapshot_seconds, snapshot_history, keep_snapshots,
-          metrics_path, metrics_every, window, quarantine_path, strict, predictions_path, events_path, batch_rows, quiet,
-          **tree) -> None:
-    """Learn SOURCE... (files in order, or - for stdin) to the end, scoring each record first.
+          metrics_path, metrics_every, window, quarantine_path, strict, predictions_path,
+          events_path, batch_rows, checkpoint_path, checkpoint_every, checkpoint_seconds,
+          follow, poll_seconds, idle_exit, label_sources, label_window, label_seconds,
+          id_field, quiet, **tree) -> None:
+    """Learn SOURCE... (files in order, - for stdin, or one mqtt:// or redis:// URL) to the
+    end, scoring each record first.
 
     \b
     Example:
       sapwood learn plant.csv --target fault --summary run.json --snapshots rules/
+
+    With --checkpoint the run can be stopped (SIGINT/SIGTERM: it finishes the batch,
+    writes the checkpoint and exits 0) or killed, and the same command goes on from the
+    checkpoint as if it had never stopped.
     """
-    from .engine import LearnJob, LearnRun
+    from .engine import (DEFAULT_CHECKPOINT_EVERY, DEFAULT_CHECKPOINT_SECONDS,
+                         DEFAULT_LABEL_WINDOW, LearnJob, LearnRun)
+
+    durable = {}
+    if checkpoint_path:
+        durable = {"checkpoint_path": checkpoint_path,
+                   "checkpoint_every": DEFAULT_CHECKPOINT_EVERY if checkpoint_every is None
+                   else checkpoint_every,
+                   "checkpoint_seconds": DEFAULT_CHECKPOINT_SECONDS
+                   if checkpoint_seconds is None else checkpoint_seconds}
+    elif checkpoint_every is not None or checkpoint_seconds is not None:
+        raise ConfigError("--checkpoint-every and --checkpoint-seconds need --checkpoint FILE")
+    if not follow and idle_exit is not None:
+        raise ConfigError("--idle-exit needs --follow")
+    if not label_sources and (label_window is not None or label_seconds is not None):
+        raise ConfigError("--label-window and --label-seconds need --labels SOURCE")
 
     job = LearnJob(
         sources=list(sources), target=target, fmt=fmt, schema_path=schema_path,
@@ -203,7 +250,11 @@ def learn(sources, target, task, fmt, schema_path, kinds, summary_path, save_pat
         snapshot_seconds=snapshot_seconds or 0.0, snapshot_history=snapshot_history,
         snapshot_keep=keep_snapshots, metrics_path=metrics_path, metrics_every=metrics_every,
         quarantine_path=quarantine_path, strict=strict, predictions_path=predictions_path,
-        events_path=events_path, window=window, batch_rows=batch_rows)
+        events_path=events_path, window=window, batch_rows=batch_rows,
+        follow=follow, poll_seconds=poll_seconds, idle_exit=idle_exit,
+        labels=list(label_sources),
+        label_window=DEFAULT_LABEL_WINDOW if label_window is None else label_window,
+        label_seconds=label_seconds or 0.0, id_field=id_field, **durable)
     progress = _Progress()
     summary = LearnRun(job, progress=progress).run()
     progress.done()
@@ -235,6 +286,14 @@ def _closing_report(s: dict) -> str:
     for name, path in s["outputs"].items():
         if path and name != "quarantine":
             lines.append(f"  {name}: {path}")
+    checkpoint = s.get("checkpoint")
+    if s.get("stopped"):
+        how = "no new records" if s["stopped"] == "idle" else s["stopped"]
+        lines.append(f"  stopped ({how})" + (
+            f"; the same command goes on from checkpoint {checkpoint['path']}"
+            if checkpoint else ""))
+    elif checkpoint:
+        lines.append(f"  checkpoint: {checkpoint['path']}")
     return "\n".join(lines)
 
 

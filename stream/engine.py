@@ -5,7 +5,22 @@ out and returns the summary (also written as JSON when asked). The clock is pass
 so tests can run on a fake one. Each record is scored before it is learned; batches are
 cut at metric-log and snapshot boundaries so that every logged value and every snapshot
 is taken exactly at its record count, whatever the batch size. The schema, when not
-declared, is inferred from the first ``INFER_ROWS`` records, whatever the batch size.
+declared, is inferred from the first ``INFER_ROWS`` records, whatever the batch size
+(in follow mode from fewer if the file holds fewer when the reader first catches up).
+
+Checkpoints (``LearnJob.checkpoint_path``, see :mod:`stream.checkpoint`) are written
+between fully learned batches: every ``checkpoint_every`` records and/or
+``checkpoint_seconds`` seconds (at the first batch end after the interval; batches are
+cut to at most ``checkpoint_every`` records), at the end of the stream and on a stop.
+The checkpoint holds the source position of the last learned batch; only after it is
+durable is the source told to ``commit`` it (a broker acknowledges then). A run whose
+checkpoint exists resumes from it: state restored, outputs cut back to their lengths at
+the checkpoint, later snapshots removed, the source sought to the position. Results
+then equal an uninterrupted run's.
+
+SIGINT and SIGTERM (when checkpointing or following): the batch being learned is
+finished, a checkpoint written, the summary written, and the run returns normally (the
+CLI exits 0). A second signal interrupts at once.
 """
 
 from __future__ import annotations
@@ -13,7 +28,10 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import os
+import signal
 import sys
+import threading
 import time
 from datetime import datetime, timezone
 from pathlib import Path
@@ -23,13 +41,18 @@ import numpy as np
 import pandas as pd
 
 from connectors.base import RawBatch
-from connectors.broker_payloads import redacted
+from connectors.broker_payloads import redacted, scheme_of
+from connectors.follow import FollowControl, FollowStopped
 from connectors.quarantine import QuarantineWriter
 from connectors.sources import open_sources
 
 from .atomic import write_atomic
+from .checkpoint import (ResumableOutput, check_fingerprint, fsync_length, iso_now,
+                         job_fingerprint, json_ready, read_checkpoint, restore_task,
+                         rollback_snapshots, task_state, truncate_for_resume,
+                         write_checkpoint)
 from .encoding import EncodedBatch, Encoder
-from .errors import ConfigError, RecordError
+from .errors import ConfigError, ModelFileError, RecordError
 from .regression_settings import RegressionSettings
 from .rules import conditions_text, node_conditions, render_text, rules_payload
 from .saved_model import save_model
@@ -39,6 +62,9 @@ from .snapshots import SnapshotSchedule, SnapshotStore
 from .tasks import TASKS
 
 DEFAULT_QUARANTINE = "sapwood-quarantine.jsonl"
+DEFAULT_CHECKPOINT_EVERY = 100_000
+DEFAULT_CHECKPOINT_SECONDS = 60.0
+DEFAULT_LABEL_WINDOW = 10_000
 INFER_ROWS = 10_000
 """Records the schema is inferred from when it is not declared."""
 
@@ -53,6 +79,16 @@ class LearnJob:
     to the defaults of whichever task the target calls for. Paths left as None are not
     written, except the quarantine: rejected records always go to a file
     (``DEFAULT_QUARANTINE`` unless named), created at the first reject.
+
+    Durability and live feeds: ``checkpoint_path`` with ``checkpoint_every`` (records,
+    0 for none) and ``checkpoint_seconds`` (0 for none); ``follow`` reads the last
+    source on as it grows (``poll_seconds`` between checks, ``idle_exit`` ends the run
+    after that many quiet seconds). With a checkpoint, a fresh run empties an existing
+    quarantine file (otherwise appended to), as an attempt that died before its first
+    checkpoint may have written to it. Delayed labels: ``labels`` (sources of id, target
+    and time rows), joined within ``label_window`` records and, if set,
+    ``label_seconds`` of data time; ``id_field`` declares the id field (see
+    :mod:`stream.delayed_labels`).
     """
 
     sources: list[str]
@@ -79,8 +115,35 @@ class LearnJob:
     window: int = 1000
     fading: float = 0.999
     batch_rows: int = 65536
+    checkpoint_path: str | None = None
+    checkpoint_every: int = DEFAULT_CHECKPOINT_EVERY
+    checkpoint_seconds: float = DEFAULT_CHECKPOINT_SECONDS
+    follow: bool = False
+    poll_seconds: float = 0.5
+    idle_exit: float | None = None
+    labels: list[str] = dataclasses.field(default_factory=list)
+    label_window: int = DEFAULT_LABEL_WINDOW
+    label_seconds: float = 0.0
+    id_field: str | None = None
 
     def __post_init__(self) -> None:
+        require_int("checkpoint interval", self.checkpoint_every, 0)
+        require_float("checkpoint interval in seconds", self.checkpoint_seconds, 0.0,
+                      math.inf, low_open=False)
+        require_float("poll interval in seconds", self.poll_seconds, 0.0, math.inf)
+        if self.idle_exit is not None:
+            require_float("idle exit in seconds", self.idle_exit, 0.0, math.inf,
+                          low_open=False)
+        require_int("label window", self.label_window, 1)
+        require_float("label window in seconds", self.label_seconds, 0.0, math.inf,
+                      low_open=False)
+        self.labels = list(self.labels)
+        if self.id_field is not None:
+            kind = self.declared.get(self.id_field, "id")
+            if kind != "id":
+                raise ConfigError(f"--id-field {self.id_field!r} is also declared "
+                                  f"{kind!r}; a field has one kind")
+            self.declared = {**self.declared, self.id_field: "id"}
         require_int("snapshot interval", self.snapshot_every, 0)
         require_float("snapshot interval in seconds", self.snapshot_seconds, 0.0, math.inf,
                       low_open=False)
@@ -127,14 +190,48 @@ class _LazyQuarantine:
             self._writer.close()
 
 
+class _BrokerPredictionSink:
+    """Per-record predictions published to an MQTT topic or appended to a Redis stream.
+
+    A resumed run publishes again what it predicted after its last checkpoint (at least
+    once, never fewer): a broker cannot take back what it was sent.
+    """
+
+    file = None
+
+    def __init__(self, spec: str) -> None:
+        from connectors.sinks import open_prediction_sink
+        self.sink = open_prediction_sink(spec)
+
+    def write(self, batch: EncodedBatch, columns: dict) -> None:
+        frame = pd.DataFrame({"origin": batch.origin, "line": batch.lines, **columns})
+        if batch.ids is not None:
+            frame.insert(2, "id", batch.ids)
+        if len(frame):
+            self.sink.write(frame)
+
+    def close(self) -> None:
+        self.sink.close()
+
+
+def _open_prediction_sink(spec: str, stdout: TextIO, resume_bytes: int | None):
+    """A broker sink when ``spec`` is an ``mqtt[s]://`` or ``redis[s]://`` URL, else a file
+    (``-`` for standard output)."""
+    if scheme_of(spec) in ("mqtt", "mqtts", "redis", "rediss"):
+        return _BrokerPredictionSink(spec)
+    return _PredictionSink(spec, stdout, resume_bytes)
+
+
 class _PredictionSink:
     """Per-record predictions as JSON lines (or CSV when the name ends in .csv)."""
 
-    def __init__(self, path: str, stdout: TextIO) -> None:
+    def __init__(self, path: str, stdout: TextIO, resume_bytes: int | None = None) -> None:
         self.csv = path.endswith(".csv")
-        self._out = stdout if path == "-" else open(path, "w", encoding="utf-8")
+        self.file = None if path == "-" else ResumableOutput(path, resume_bytes,
+                                                             "predictions file")
+        self._out = stdout if self.file is None else self.file.handle
         self._own = path != "-"
-        self._header = True
+        self._header = not resume_bytes
 
     def write(self, batch: EncodedBatch, columns: dict) -> None:
         frame = pd.DataFrame({"origin": batch.origin, "line": batch.lines, **columns})
@@ -173,23 +270,65 @@ def _first_reject(rejects):
 
 
 class LearnRun:
-    """State of one learning run; :meth:`run` drives it to the end of the stream."""
+    """State of one learning run; :meth:`run` drives it to the end of the stream.
+
+    ``warn`` receives messages for the operator (a damaged checkpoint fallen back from);
+    stderr by default.
+    """
 
     def __init__(self, job: LearnJob, clock: Callable[[], float] = time.perf_counter,
                  wall: Callable[[], float] = time.time, stdout: TextIO | None = None,
-                 progress: Callable[[dict], None] | None = None) -> None:
+                 progress: Callable[[dict], None] | None = None,
+                 warn: Callable[[str], None] | None = None) -> None:
         self.job = job
         self.clock = clock
         self.wall = wall
         self.stdout = stdout or sys.stdout
         self.progress = progress
+        self.warn = warn or (lambda text: print(f"sapwood: warning: {text}",
+                                                file=sys.stderr, flush=True))
         self.schema: Schema | None = load_schema(job.schema_path) if job.schema_path else None
         if self.schema is not None and self.schema.target != job.target:
             raise ConfigError(f"the schema's target is {self.schema.target!r} but the "
                               f"target asked for is {job.target!r}")
         self.encoder: Encoder | None = None
         self.task = None
+        self.stop = threading.Event()
+        self.stopped: str | None = None
+        self.position: dict | None = None
+        self.checkpoints_written = 0
+        self.last_checkpoint: dict | None = None
+        self.prior_seconds = 0.0
+        self.resumes = 0
+        self.resumed_at: int | None = None
+        self.snapshot_sequence = 0
+        self.delayed = None
+        self.resume = None
+        if job.checkpoint_path:
+            folder = os.path.dirname(os.path.abspath(job.checkpoint_path))
+            if not os.path.isdir(folder):
+                raise ConfigError(f"cannot keep checkpoint {job.checkpoint_path!r}: "
+                                  f"directory {folder!r} does not exist")
+            self.resume = read_checkpoint(job.checkpoint_path, self.warn)
+            if self.resume is not None:
+                check_fingerprint(self.resume.meta["job"], job_fingerprint(job),
+                                  self.resume.path)
+        appended = self.resume.meta["outputs"] if self.resume is not None else {}
+
+        def resume_bytes(name: str) -> int | None:
+            return appended[name]["bytes"] if name in appended else None
+
         self.quarantine = _LazyQuarantine(job.quarantine_path or DEFAULT_QUARANTINE)
+        if self.resume is not None:
+            qbytes = resume_bytes("quarantine")
+            if qbytes is None and os.path.exists(self.quarantine.path):
+                os.unlink(self.quarantine.path)  # created after the checkpoint
+            else:
+                truncate_for_resume(self.quarantine.path, qbytes, "quarantine file")
+        elif job.checkpoint_path and os.path.exists(self.quarantine.path):
+            # a checkpointed run starts its quarantine afresh, like its other outputs:
+            # what is there may come from an attempt that died before its first checkpoint
+            os.truncate(self.quarantine.path, 0)
         self.snapshots = None
         if job.snapshot_dir:
             try:
@@ -202,12 +341,20 @@ class LearnRun:
         self.schedule = SnapshotSchedule(job.snapshot_every, job.snapshot_seconds,
                                          clock=clock) \
             if job.snapshot_every or job.snapshot_seconds else None
-        self.metrics_out = open(job.metrics_path, "w", encoding="utf-8") \
-            if job.metrics_path else None
-        self.predictions = _PredictionSink(job.predictions_path, self.stdout) \
+        self.appended: dict[str, ResumableOutput] = {}
+        for name, path, what in (("metrics", job.metrics_path, "metrics log"),
+                                 ("events", job.events_path, "events file")):
+            if path:
+                self.appended[name] = ResumableOutput(path, resume_bytes(name), what)
+        self.metrics_out = self.appended["metrics"].handle if "metrics" in self.appended \
+            else None
+        self.events_out = self.appended["events"].handle if "events" in self.appended \
+            else None
+        self.predictions = _open_prediction_sink(job.predictions_path, self.stdout,
+                                                 resume_bytes("predictions")) \
             if job.predictions_path else None
-        self.events_out = open(job.events_path, "w", encoding="utf-8") \
-            if job.events_path else None
+        if self.predictions is not None and self.predictions.file is not None:
+            self.appended["predictions"] = self.predictions.file
         self.recent_events: list[dict] = []
         self.records = 0
         self.snapshots_written = 0
@@ -218,7 +365,15 @@ class LearnRun:
         self.finished = 0.0
         self.startup_seconds = 0.0
         self.source = None
-        if self.schema is not None:
+        if self.snapshots is not None:
+            self.snapshot_sequence = _highest_snapshot(self.snapshots)
+        if job.labels:
+            from .delayed_labels import DelayedLabels
+
+            self.delayed = DelayedLabels(self)
+        if self.resume is not None:
+            self._restore(self.resume)
+        elif self.schema is not None:
             self._start(self.schema)
 
     # ------------------------------------------------------------------ setup
@@ -237,37 +392,54 @@ class LearnRun:
 
     # ------------------------------------------------------------------ the run
     def run(self) -> dict:
-        """Learn the stream to its end; returns the summary."""
+        """Learn the stream to its end (or until stopped); returns the summary."""
         job = self.job
         warm = self.clock()
         warm_up()
         self.startup_seconds = self.clock() - warm
         self.started = self.clock()
-        self.source = open_sources(job.sources, job.fmt, job.batch_rows)
-        try:
-            pending: list[RawBatch] = []
-            for batch in self.source.batches():
-                if self.task is None:
-                    pending.append(batch)
-                    if sum(len(b) for b in pending) < INFER_ROWS:
-                        continue
-                    self._infer(pending)
-                    for held in pending:
-                        self._consume(held)
-                    pending = []
-                    continue
-                self._consume(batch)
-            if pending:
-                self._infer(pending)
-                for held in pending:
-                    self._consume(held)
-        finally:
+        self.last_checkpoint_at = self.started
+        follow = FollowControl(job.poll_seconds, job.idle_exit, self.stop,
+                               on_idle=self._on_idle) if job.follow else None
+        batch_rows = job.batch_rows
+        if job.checkpoint_path and job.checkpoint_every:
+            # checkpoints fall between batches: no batch may outgrow the interval
+            batch_rows = min(batch_rows, job.checkpoint_every)
+        self.source = open_sources(job.sources, job.fmt, batch_rows, follow=follow)
+        if job.checkpoint_path and not getattr(self.source, "resumable", True) \
+                or job.checkpoint_path and not hasattr(self.source, "seek"):
             self.source.close()
+            raise ConfigError("a checkpoint needs sources it can return to (files or a "
+                              "broker); standard input cannot be read again")
+        if self.resume is not None and self.resume.meta.get("source") is not None:
+            self.source.seek(self.resume.meta["source"])
+        if self.delayed is not None:
+            self.delayed.open(batch_rows)
+        self.uncommitted = 0
+        self.since_checkpoint = 0
+        self._pending = []
+        handlers = self._catch_signals() if job.checkpoint_path or job.follow else {}
+        try:
+            try:
+                self._read_all()
+            except FollowStopped as exc:
+                self.stopped = self.stopped or exc.reason
+            if self.stopped is None and self.delayed is not None:
+                self.delayed.finish()
+            self.finished = self.clock()
+            if self.stopped is None and self.snapshots is not None \
+                    and self.task is not None \
+                    and self.last_snapshot_records != self.task.records_learned:
+                self._snapshot()
+            if job.checkpoint_path and self.task is not None:
+                self.write_checkpoint()
+        finally:
+            for signum, handler in handlers.items():
+                signal.signal(signum, handler)
+            self.source.close()
+            if self.delayed is not None:
+                self.delayed.close()
             self._close_outputs()
-        self.finished = self.clock()
-        if self.snapshots is not None and self.task is not None \
-                and self.last_snapshot_records != self.task.records_learned:
-            self._snapshot()
         if job.save_path and self.task is not None:
             self.save(job.save_path)
         summary = self.summary()
@@ -276,14 +448,188 @@ class LearnRun:
                                                       default=_json_default) + "\n")
         return summary
 
+    def _read_all(self) -> None:
+        """Every batch of the source, through schema inference, learning and checkpoints."""
+        self._pending: list[RawBatch] = []
+        try:
+            for batch in self.source.batches():
+                if self.task is None:
+                    self._pending.append(batch)
+                    if sum(len(b) for b in self._pending) >= INFER_ROWS:
+                        self._learn_pending()
+                else:
+                    self._consume(batch)
+                    self._after_batch(batch)
+                if self.stop.is_set():
+                    break
+        finally:
+            # read but not yet learned (a stop or the end came during inference)
+            if self._pending and sys.exc_info()[0] in (None, FollowStopped):
+                self._learn_pending()
+
+    def _learn_pending(self) -> None:
+        """Infer the schema from the batches held back, then learn them."""
+        pending, self._pending = self._pending, []
+        self._infer(pending)
+        for held in pending:
+            self._consume(held)
+            self._after_batch(held)
+
+    def _on_idle(self) -> None:
+        """A followed file has no new line for now (called from inside the source's
+        iteration, between two batches): a slow feed is not held back until
+        ``INFER_ROWS`` records have come, and a checkpoint due by time is written."""
+        if self.task is None:
+            if self._pending:
+                self._learn_pending()
+            return
+        job = self.job
+        if job.checkpoint_path and job.checkpoint_seconds and self.since_checkpoint and \
+                self.clock() - self.last_checkpoint_at >= job.checkpoint_seconds:
+            self.write_checkpoint()
+
+    def _after_batch(self, batch: RawBatch) -> None:
+        """Remember where the source stands; checkpoint or acknowledge when due."""
+        if batch.position is not None:
+            self.position = batch.position
+        grown = self.records - getattr(self, "_records_seen", 0)
+        self._records_seen = self.records
+        self.uncommitted += grown
+        self.since_checkpoint += grown
+        job = self.job
+        if not job.checkpoint_path:
+            if self.position is not None and hasattr(self.source, "commit"):
+                self.source.commit(self.position)  # nothing durable to wait for
+            return
+        limit = getattr(self.source, "max_uncommitted", None)
+        every = job.checkpoint_every
+        due = (every and (self.records // every >
+                          (self.records - self.since_checkpoint) // every)) or \
+            (job.checkpoint_seconds and
+             self.clock() - self.last_checkpoint_at >= job.checkpoint_seconds) or \
+            (limit is not None and self.uncommitted >= limit)
+        if due:
+            self.write_checkpoint()
+
+    # ------------------------------------------------------------------ stopping
+    def _catch_signals(self) -> dict:
+        """SIGINT/SIGTERM ask the run to stop after the current batch (main thread only)."""
+        if threading.current_thread() is not threading.main_thread():
+            return {}
+        previous = {}
+        for signum in (signal.SIGINT, signal.SIGTERM):
+            previous[signum] = signal.signal(signum, self._on_signal)
+        return previous
+
+    def _on_signal(self, signum, frame) -> None:
+        if self.stop.is_set():
+            raise KeyboardInterrupt  # a second signal: stop now
+        self.stopped = signal.Signals(signum).name
+        self.stop.set()
+
+    # ------------------------------------------------------------------ checkpoints
+    def write_checkpoint(self) -> None:
+        """Write the whole state to the checkpoint, then let the source commit."""
+        started = self.clock()
+        outputs = {name: {"path": out.path, "bytes": out.durable_length()}
+                   for name, out in self.appended.items()}
+        qpath = self.quarantine.path  # the writer flushes after every batch
+        outputs["quarantine"] = {"path": qpath, "bytes": fsync_length(qpath)
+                                 if os.path.exists(qpath) else None}
+        meta, arrays = task_state(self.task)
+        schedule = None
+        if self.schedule is not None:
+            schedule = {"last_records": self.schedule.last_records,
+                        "seconds_since": max(self.clock() - self.schedule.last_time, 0.0)}
+        meta.update({
+            "written_at": iso_now(self.wall()),
+            "job": job_fingerprint(self.job),
+            "schema": self.schema.to_dict(),
+            "encoder": self.encoder.state_dict(),
+            "run": json_ready({
+                "records": self.records, "quarantined": self.quarantine.count,
+                "learned": self.task.records_learned,
+                "snapshots_written": self.snapshots_written,
+                "last_snapshot_records": self.last_snapshot_records,
+                "snapshot_sequence": self.snapshot_sequence,
+                "schedule": schedule, "last_time": self.last_time,
+                "recent_events": self.recent_events,
+                "seconds": self.prior_seconds + (self.clock() - self.started),
+                "resumes": self.resumes, "checkpoints": self.checkpoints_written + 1,
+            }),
+            "source": json_ready(self.position),
+            "outputs": outputs,
+            "labels_source": None, "labels": None,
+        })
+        if self.delayed is not None:
+            labels_meta, label_arrays = self.delayed.state()
+            meta.update(labels_meta)
+            arrays.update(label_arrays)
+        size = write_checkpoint(self.job.checkpoint_path, meta, arrays)
+        self.checkpoints_written += 1
+        self.last_checkpoint = {"records": self.records, "bytes": size,
+                                "seconds": round(self.clock() - started, 6)}
+        self.last_checkpoint_at = self.clock()
+        self.since_checkpoint = 0
+        if self.position is not None and hasattr(self.source, "commit"):
+            self.source.commit(self.position)
+        if self.delayed is not None:
+            self.delayed.commit()
+        self.uncommitted = 0
+
+    def _restore(self, checkpoint) -> None:
+        """Take up the state a checkpoint holds (the source is sought in :meth:`run`)."""
+        from .schema import Schema as _Schema
+
+        meta = checkpoint.meta
+        try:
+            schema = _Schema.from_dict(meta["schema"])
+            encoder = Encoder.from_state(schema, meta["encoder"])
+        except (KeyError, TypeError, ValueError, ConfigError) as exc:
+            raise ModelFileError(f"{checkpoint.path!r} holds no usable schema or "
+                                 f"encoder: {exc}") from exc
+        if self.schema is not None and self.schema.to_dict() != schema.to_dict():
+            raise ConfigError(f"checkpoint {checkpoint.path!r} was written with another "
+                              f"schema than {self.job.schema_path!r} holds now; remove "
+                              f"the checkpoint to start over")
+        self.schema, self.encoder = schema, encoder
+        self.task = restore_task(checkpoint)
+        run = meta["run"]
+        self.records = int(run["records"])
+        self._records_seen = self.records
+        self.quarantine.count = int(run["quarantined"])
+        self.snapshots_written = int(run["snapshots_written"])
+        self.last_snapshot_records = run["last_snapshot_records"]
+        self.last_time = run["last_time"]
+        self.recent_events = list(run["recent_events"])
+        self.prior_seconds = float(run["seconds"])
+        self.resumes = int(run["resumes"]) + 1
+        self.resumed_at = self.records
+        self.checkpoints_written = 0
+        self.snapshot_sequence = int(run["snapshot_sequence"])
+        if self.snapshots is not None:
+            rollback_snapshots(self.job.snapshot_dir, self.snapshot_sequence)
+        if self.schedule is not None and run.get("schedule"):
+            self.schedule.last_records = int(run["schedule"]["last_records"])
+            self.schedule.last_time = self.clock() - float(run["schedule"]["seconds_since"])
+        self.position = meta.get("source")
+        if self.delayed is not None:
+            self.delayed.restore(checkpoint)
+
     def _infer(self, pending: list[RawBatch]) -> None:
         frames = [b.frame for b in pending if len(b.frame)]
         if not frames:     # nothing but rejects so far: infer from what there is
             frames = [pending[0].frame]
         prefix = pd.concat(frames, ignore_index=True).iloc[:INFER_ROWS]
+        if self.delayed is not None and self.job.target not in prefix.columns:
+            if self.job.task is None:
+                raise ConfigError(f"the records carry no {self.job.target!r} (their labels "
+                                  f"come from --labels): give --task or --schema")
+            prefix = prefix.assign(**{self.job.target: np.nan})
         self._start(infer_schema(prefix, self.job.target, self.job.task, self.job.declared))
 
     def _close_outputs(self) -> None:
+        """Close every output file; safe to call twice."""
         self.quarantine.close()
         for out in (self.metrics_out, self.events_out):
             if out is not None:
@@ -292,14 +638,41 @@ class LearnRun:
             self.predictions.close()
 
     def _consume(self, raw: RawBatch) -> None:
-        job = self.job
-        batch = self.encoder.encode(raw)
-        if batch.rejects and job.strict:
+        batch = self.encode(raw, labels_optional=self.delayed is not None)
+        if self.delayed is not None:
+            self.delayed.consume(batch)
+        else:
+            self.learn_stretch(batch)
+        if self.progress is not None:
+            self.progress(self._progress_facts())
+
+    def encode(self, raw: RawBatch, labels_optional: bool = False,
+               count: bool = True) -> EncodedBatch:
+        """Encode a raw batch; rejects go to quarantine (or stop a strict run).
+        ``labels_optional`` keeps records without a target (delayed labels)."""
+        batch = self.encoder.encode(raw, scoring=labels_optional)
+        if batch.rejects and self.job.strict:
             raise RecordError(_first_reject(batch.rejects).message() +
                               " (strict mode stops here)")
         before = self.quarantine.count
         self.quarantine.write(sorted(batch.rejects, key=lambda r: (r.line, r.field or "")))
-        self.records += len(batch) + self.quarantine.count - before
+        if count:
+            self.records += len(batch) + self.quarantine.count - before
+        return batch
+
+    def emit_predictions(self, batch: EncodedBatch, part: slice, scored) -> None:
+        """Write the predictions of ``batch[part]`` (delayed labels: at arrival)."""
+        if self.predictions is not None:
+            self.predictions.write(_slice_batch(batch, part),
+                                   self.task.prediction_columns(scored, self.encoder))
+
+    def learn_stretch(self, batch: EncodedBatch, arrival=None) -> None:
+        """Score then learn every record of ``batch`` (all labelled), in order.
+
+        Batches are cut at metric-log and snapshot boundaries. ``arrival``: the
+        predictions made when the records arrived (delayed labels), scored instead of
+        the learner's own; predictions are then not written again.
+        """
         start = 0
         n = len(batch)
         while start < n:
@@ -309,8 +682,9 @@ class LearnRun:
             scored = self.task.learn(batch.X[part], batch.y[part], self.encoder)
             self._note_time(batch.times, stop - 1)
             self._write_events(batch, start - learned_before)
-            rows = self.task.update_score(batch.y[part], scored, self.encoder)
-            if self.predictions is not None:
+            judged = scored if arrival is None else arrival.part(part)
+            rows = self.task.update_score(batch.y[part], judged, self.encoder)
+            if self.predictions is not None and arrival is None:
                 self.predictions.write(_slice_batch(batch, part),
                                        self.task.prediction_columns(scored, self.encoder))
             for row in rows:
@@ -318,8 +692,6 @@ class LearnRun:
             if self.schedule is not None and self.schedule.due(self.task.records_learned):
                 self._snapshot()
             start = stop
-        if self.progress is not None:
-            self.progress(self._progress_facts())
 
     def _note_time(self, times: np.ndarray | None, index: int) -> None:
         """Remember the latest record time seen (the data's own clock), if any."""
@@ -400,7 +772,8 @@ class LearnRun:
         now = self.wall()
         text = render_text(rules, {**header, "written_at": _iso(now)})
         learned = self.task.records_learned
-        self.snapshots.write(learned, payload, text, now)
+        entry = self.snapshots.write(learned, payload, text, now)
+        self.snapshot_sequence = entry["sequence"]
         if self.schedule is not None:
             self.schedule.taken(learned)
         self.snapshots_written += 1
@@ -429,7 +802,7 @@ class LearnRun:
 
     def summary(self) -> dict:
         """The run's summary (the contract other tools rely on, plus details)."""
-        seconds = max(self.finished - self.started, 0.0)
+        seconds = self.prior_seconds + max(self.finished - self.started, 0.0)
         task = self.task
         m = self.model
         drift = m.counters() if m else {}
@@ -463,15 +836,30 @@ class LearnRun:
             "schema": self.schema.to_dict() if self.schema else None,
             "unknown_fields": dict(self.encoder.unknown_fields) if self.encoder else {},
             "sources": [redacted(spec) for spec in self.job.sources],
+            "stopped": self.stopped,
+            "checkpoint": None if not self.job.checkpoint_path else {
+                "path": self.job.checkpoint_path, "written": self.checkpoints_written,
+                "resumes": self.resumes, "resumed_at_records": self.resumed_at,
+                "last": self.last_checkpoint},
+            "labels": self.delayed.summary() if self.delayed is not None else None,
             "outputs": {
                 "quarantine": self.quarantine.path if self.quarantine.count else None,
                 "snapshots": self.job.snapshot_dir if self.snapshots_written else None,
                 "metrics": self.job.metrics_path, "events": self.job.events_path,
                 "model": self.job.save_path if self.saved else None,
-                "predictions": self.job.predictions_path,
+                "predictions": redacted(self.job.predictions_path)
+                if self.job.predictions_path else None,
             },
         })
         return summary
+
+
+def _highest_snapshot(store: SnapshotStore) -> int:
+    """The highest snapshot number in a store's directory (0 for none or unreadable)."""
+    try:
+        return max((e["sequence"] for e in store.entries()), default=0)
+    except (ModelFileError, OSError):
+        return 0
 
 
 def _slice_batch(batch: EncodedBatch, part: slice) -> EncodedBatch:

@@ -22,8 +22,9 @@ from .tasks import ClassificationTask, RegressionTask
 
 MODEL_KIND = "sapwood-model"
 _SCORE_PREFIX = "score."
-_LEARNERS = {"classification": (TreeClassifier, ClassificationScore, ClassificationTask),
+LEARNERS = {"classification": (TreeClassifier, ClassificationScore, ClassificationTask),
              "regression": (TreeRegressor, RegressionScore, RegressionTask)}
+"""Task name -> (learner, prequential score, task) classes, for files that hold a learner."""
 
 
 @dataclasses.dataclass
@@ -64,7 +65,7 @@ def load_model(path: str) -> SavedModel:
     meta, arrays = read_model_file(path, expect_kind=MODEL_KIND)
     try:
         schema = Schema.from_dict(meta["schema"])
-        learner, scorer, task = _LEARNERS[meta.get("task", "classification")]
+        learner, scorer, task = LEARNERS[meta.get("task", "classification")]
         encoder = Encoder.from_state(schema, meta["encoder"])
         tree_arrays = {k: v for k, v in arrays.items() if not k.startswith(_SCORE_PREFIX)}
         model = learner.from_state(meta["tree"], tree_arrays)

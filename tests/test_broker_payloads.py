@@ -342,3 +342,22 @@ def test_registry_and_hook():
     assert "broker scheme must be one of mqtt, mqtts, redis, rediss, got 'amqp'" \
         in str(err.value)
     assert SECRET not in str(err.value)
+
+
+def test_a_password_can_come_from_the_environment_and_is_never_shown(monkeypatch):
+    """password_env keeps the secret out of the command line (common practice: process
+    lists are readable by every user of a machine)."""
+    from connectors.broker_payloads import Options, parse_address
+
+    monkeypatch.setenv("SAPWOOD_TEST_SECRET", "s3cret-xyz")
+    address = parse_address("redis://ops@host:6379/0?password_env=SAPWOOD_TEST_SECRET", 6379)
+    opts = Options(address, {}, "redis")
+    assert opts.password(address.password) == "s3cret-xyz"
+    opts.finish()
+    monkeypatch.delenv("SAPWOOD_TEST_SECRET")
+    with pytest.raises(ConfigError, match="SAPWOOD_TEST_SECRET.*not set"):
+        Options(address, {}, "redis").password(None)
+    both = parse_address("redis://h/0?password=a&password_env=X", 6379)
+    with pytest.raises(ConfigError, match="not both") as caught:
+        Options(both, {}, "redis").password(None)
+    assert "=a&" not in str(caught.value) and "password=***" in str(caught.value)

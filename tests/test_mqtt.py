@@ -12,11 +12,9 @@ import json
 import os
 import random
 import shutil
-import signal
 import socket
 import subprocess
 import sys
-import textwrap
 import threading
 import time
 
@@ -29,12 +27,10 @@ from connectors.broker_payloads import open_broker
 from connectors.mqtt import MqttSource
 from connectors.quarantine import QuarantineWriter
 from connectors.sinks import open_prediction_sink
+from connectors.local_brokers import MOSQUITTO, LocalMosquitto, free_port
 from stream.errors import EXIT_INPUT, ConfigError, InputError
 
 SECRET = "pw-9f3Kq7"
-MOSQUITTO = shutil.which("mosquitto") or next(
-    (p for p in ("/usr/sbin/mosquitto", "/usr/local/sbin/mosquitto") if os.path.exists(p)),
-    None)
 PASSWD = shutil.which("mosquitto_passwd")
 
 pytestmark = pytest.mark.skipif(
@@ -42,61 +38,7 @@ pytestmark = pytest.mark.skipif(
     reason="mosquitto is not installed (bash .ci/brokers.sh install adds it)")
 
 
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-class Mosquitto:
-    """A mosquitto process on 127.0.0.1 with its own config and persistence directory."""
-
-    def __init__(self, directory, extra: str = "allow_anonymous true\n") -> None:
-        self.dir = directory
-        self.port = free_port()
-        self.extra = extra
-        self.proc = None
-        (directory / "data").mkdir(exist_ok=True)
-
-    def config(self) -> str:
-        # max_queued_messages 0: no cap on the queue of an absent persistent client
-        # (mosquitto's default of 1000 would drop messages, see connectors/mqtt.py)
-        return textwrap.dedent(f"""\
-            listener {self.port} 127.0.0.1
-            persistence true
-            persistence_location {self.dir / 'data'}/
-            max_queued_messages 0
-            user root
-            log_dest file {self.dir / 'mosquitto.log'}
-            """) + self.extra
-
-    def start(self) -> "Mosquitto":
-        conf = self.dir / "mosquitto.conf"
-        conf.write_text(self.config())
-        self.proc = subprocess.Popen([MOSQUITTO, "-c", str(conf)], stdout=subprocess.DEVNULL,
-                                     stderr=subprocess.DEVNULL)
-        deadline = time.monotonic() + 10
-        while time.monotonic() < deadline:
-            try:
-                socket.create_connection(("127.0.0.1", self.port), 0.2).close()
-                return self
-            except OSError:
-                if self.proc.poll() is not None:
-                    break
-                time.sleep(0.05)
-        log = (self.dir / "mosquitto.log")
-        raise RuntimeError("mosquitto did not start: " +
-                           (log.read_text()[-500:] if log.exists() else "no log"))
-
-    def stop(self) -> None:
-        if self.proc is not None and self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGTERM)  # writes its persistence file first
-            self.proc.wait(10)
-        self.proc = None
-
-    def url(self, path: str, scheme: str = "mqtt", userinfo: str = "", **query) -> str:
-        q = "&".join(f"{k}={v}" for k, v in query.items())
-        return f"{scheme}://{userinfo}127.0.0.1:{self.port}/{path}" + (f"?{q}" if q else "")
+Mosquitto = LocalMosquitto
 
 
 @pytest.fixture(scope="module")

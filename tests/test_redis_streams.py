@@ -8,11 +8,7 @@ documentation they rely on (XREADGROUP, XACK, XPENDING, XAUTOCLAIM, XADD, XDEL).
 from __future__ import annotations
 
 import json
-import os
 import random
-import shutil
-import socket
-import subprocess
 import threading
 import time
 
@@ -23,64 +19,17 @@ from connectors.base import ResumableSource
 from connectors.broker_payloads import open_broker
 from connectors.quarantine import QuarantineWriter
 from connectors.redis_streams import RedisStreamSource, entry_id
+from connectors.local_brokers import REDIS_SERVER, LocalRedis, free_port
 from connectors.sinks import open_prediction_sink
 from stream.errors import EXIT_INPUT, ConfigError, InputError
 
 SECRET = "rd-Pw-4471x"
-REDIS_SERVER = shutil.which("redis-server") or next(
-    (p for p in ("/usr/bin/redis-server", "/usr/sbin/redis-server") if os.path.exists(p)),
-    None)
-
 pytestmark = pytest.mark.skipif(
     REDIS_SERVER is None,
     reason="redis-server is not installed (bash .ci/brokers.sh install adds it)")
 
 
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-class RedisServer:
-    """redis-server on 127.0.0.1 with an append-only file, so a restart keeps the data."""
-
-    def __init__(self, directory, *extra: str) -> None:
-        self.dir = directory
-        self.port = free_port()
-        self.extra = list(extra)
-        self.proc = None
-
-    def start(self) -> "RedisServer":
-        self.proc = subprocess.Popen(
-            [REDIS_SERVER, "--port", str(self.port), "--bind", "127.0.0.1", "--save", "",
-             "--appendonly", "yes", "--appendfsync", "always", "--dir", str(self.dir),
-             "--logfile", str(self.dir / "redis.log"), *self.extra],
-            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        deadline = time.monotonic() + 10
-        while time.monotonic() < deadline:
-            try:
-                socket.create_connection(("127.0.0.1", self.port), 0.2).close()
-                return self
-            except OSError:
-                if self.proc.poll() is not None:
-                    break
-                time.sleep(0.05)
-        raise RuntimeError("redis-server did not start")
-
-    def stop(self) -> None:
-        if self.proc is not None and self.proc.poll() is None:
-            self.proc.terminate()
-            self.proc.wait(10)
-        self.proc = None
-
-    def client(self, password=None):
-        import redis
-        return redis.Redis(port=self.port, password=password, protocol=2)
-
-    def url(self, userinfo: str = "", **query) -> str:
-        q = "&".join(f"{k}={v}" for k, v in query.items())
-        return f"redis://{userinfo}127.0.0.1:{self.port}/0?{q}"
+RedisServer = LocalRedis
 
 
 @pytest.fixture(scope="module")
@@ -437,3 +386,44 @@ def test_predictions_are_appended_to_a_stream(server, stream):
          "rule": "R2"},
         {"origin": "tel", "line": "3", "predicted": "ok", "confidence": "", "rule": "R1"},
     ]
+
+
+def test_learn_reads_a_stream_and_publishes_each_prediction_to_another(server, stream):
+    """End to end through the CLI: every entry learned once and predicted once, the
+    predictions in entry order on the output stream, the password-free URL in the
+    summary (XADD/XRANGE semantics as documented by Redis)."""
+    import json
+
+    from click.testing import CliRunner
+
+    from stream.cli import cli
+
+    r = server.client()
+    pipe = r.pipeline(transaction=False)
+    n = 3000
+    for i in range(n):
+        temp = 15 + (i * 7919) % 200 / 10.0
+        pipe.xadd(stream, {"temp": f"{temp:.1f}", "hot": "yes" if temp > 22 else "no"})
+    pipe.execute()
+    out_key = stream + "-pred"
+    runner = CliRunner()
+    with runner.isolated_filesystem():
+        result = runner.invoke(cli, [
+            "learn", server.url(stream=stream, idle_exit=0), "--target", "hot",
+            "--predictions", server.url(stream=out_key), "--summary", "s.json", "-q"])
+        assert result.exit_code == 0, result.output
+        summary = json.loads(open("s.json").read())
+    assert summary["records"] == n and summary["learned"] == n
+    entries = r.xrange(out_key)
+    assert len(entries) == n
+    lines = [int(fields[b"line"]) for _, fields in entries]
+    assert lines == sorted(lines) and len(set(lines)) == n
+    predicted = [fields[b"predicted"].decode() for _, fields in entries]
+    # the very first record comes before any class was seen: no prediction (empty field)
+    assert predicted[0] == "" and set(predicted[1:]) <= {"yes", "no"}
+    # the learnt threshold makes the late predictions right (a one-feature step)
+    truth = ["yes" if 15 + (i * 7919) % 200 / 10.0 > 22 else "no" for i in range(n)]
+    late = sum(p == t for p, t in zip(predicted[-1000:], truth[-1000:])) / 1000
+    assert late > 0.95
+    assert summary["outputs"]["predictions"].startswith("redis://")
+    assert pending_count(server, stream) == 0
