@@ -17,6 +17,9 @@ end-to-end
     the same file, in the same run.
 memory
     Peak memory of ``sapwood learn -`` reading 200k and 2M rows through a pipe.
+feeds
+    Records/s from a file, a Redis stream and an MQTT topic, and the cost of a checkpoint
+    every 10,000 records (:mod:`stream.feeds_bench`).
 
 How memory is measured: Linux keeps a child's ``ru_maxrss`` across ``exec``, starting
 from the resident size of the process it was forked (or vforked) from, so ``wait4`` and
@@ -715,24 +718,29 @@ def _feed(path: Path, pipe) -> None:
             pass
 
 
-def learn_child(bench: Bench, path: Path, target: str, pipe: bool,
-                poll_seconds: float = 0.005) -> ChildRun:
-    """Run ``sapwood learn - --target TARGET`` with ``path`` on stdin.
+def learn_child(bench: Bench, path: Path | None, target: str, pipe: bool,
+                poll_seconds: float = 0.005, source: str = "-",
+                extra: Iterable[str] = ()) -> ChildRun:
+    """Run ``sapwood learn SOURCE --target TARGET [EXTRA...]``; SOURCE ``-`` reads ``path``
+    on stdin.
 
     ``pipe`` feeds the file through a pipe (a stream, as from another program) instead
-    of handing the child the open file. The child is ``python -m stream.cli``, the
-    program the ``sapwood`` script runs, with this interpreter.
+    of handing the child the open file. Any other SOURCE (a file name, a broker URL) is
+    read by the child itself, ``path`` is then None. The child is ``python -m
+    stream.cli``, the program the ``sapwood`` script runs, with this interpreter.
     """
     summary_path = bench.workdir / "child-summary.json"
     errors_path = bench.workdir / "child-stderr.txt"
     summary_path.unlink(missing_ok=True)
-    command = [sys.executable, "-m", "stream.cli", "learn", "-", "--target", target,
+    command = [sys.executable, "-m", "stream.cli", "learn", source, "--target", target,
                "--summary", str(summary_path), "--quarantine",
-               str(bench.workdir / "child-quarantine.jsonl"), "-q"]
+               str(bench.workdir / "child-quarantine.jsonl"), "-q", *extra]
+    pipe = pipe and path is not None
     measured = Path("/proc/self/status").exists()
-    with open(errors_path, "wb") as errors, open(path, "rb") as source:
+    with open(errors_path, "wb") as errors, \
+            open(path if path is not None else os.devnull, "rb") as source_file:
         start = bench.clock()
-        child = subprocess.Popen(command, stdin=subprocess.PIPE if pipe else source,
+        child = subprocess.Popen(command, stdin=subprocess.PIPE if pipe else source_file,
                                  stdout=subprocess.DEVNULL, stderr=errors,
                                  cwd=bench.workdir)
         feeder = None
@@ -995,6 +1003,9 @@ def run_bench(bench: Bench, suites: list[str]) -> list[SuiteResult]:
 
 # ---------------------------------------------------------------- command
 
+from . import feeds_bench  # noqa: E402,F401 - registers the feeds suite
+
+
 QUICK = {"records": 5_000, "csv_rows": 50_000, "memory_rows": (20_000, 200_000), "repeats": 1}
 """Sizes of ``--quick``: a smoke run of every suite in a minute or two."""
 
@@ -1020,7 +1031,7 @@ def _river_records(ctx, param, values: tuple[str, ...]) -> dict[str, int]:
 @click.command(name="bench")
 @click.option("--suite", "suites", multiple=True, default=("all",), show_default=True,
               type=click.Choice([*SUITES, "all"]),
-              help="Suite to run (repeatable): learners, end-to-end, memory, or all.")
+              help="Suite to run (repeatable); all runs every one in order.")
 @click.option("--records", type=click.IntRange(min=1), default=None,
               help="Records per learner stream  [default: 200000; 5000 with --quick]")
 @click.option("--river-records", "river_records", multiple=True, metavar="[STREAM=]M",

@@ -122,6 +122,27 @@ def test_end_to_end_and_memory_suites_on_small_files(tmp_path):
     assert "read_csv rows/s" in text and "peak MB" in text and text.count("target ") >= 4
 
 
+def test_feeds_suite_learns_every_record_from_each_feed(tmp_path):
+    """Each row is a real child run: every record of the file, the Redis stream and the
+    MQTT backlog learned exactly once; checkpoints every 10k plus one at the end."""
+    from connectors.local_brokers import MOSQUITTO, REDIS_SERVER
+
+    run = Bench(tmp_path, records=12_000, repeats=1, say=lambda message: None)
+    (feeds,) = run_bench(run, ["feeds"])
+    expected = [("CSV file", "none"), ("CSV file", "every 10,000")]
+    if REDIS_SERVER is not None:
+        expected += [("Redis stream", "none"), ("Redis stream", "every 10,000")]
+    if MOSQUITTO is not None:
+        expected += [("MQTT topic", "none")]
+    assert [(r["feed"], r["checkpoint"]) for r in feeds.rows] == expected
+    assert all(r["records"] == 12_000 for r in feeds.rows)
+    assert [r["checkpoints"] for r in feeds.rows if r["checkpoint"] != "none"] == \
+        [2] * (len([r for r in feeds.rows if r["checkpoint"] != "none"]))
+    accuracies = {round(r["accuracy"], 12) for r in feeds.rows}
+    assert len(accuracies) == 1      # the same records in the same order, whatever the feed
+    assert feeds.rows[0]["vs_file"] == pytest.approx(1.0)
+
+
 def test_child_peak_is_not_the_parents(tmp_path):
     # A child's ru_maxrss on Linux starts from its parent's high-water mark (kept across
     # exec); the bench reads the child's own VmHWM instead. Make this process's peak far
@@ -171,7 +192,8 @@ def test_markdown_table_has_one_line_per_row(monkeypatch, tmp_path):
 
 
 def test_suites_and_streams_are_registries(tmp_path):
-    assert list(bench.SUITES) == ["learners", "drift", "regression", "end-to-end", "memory"]
+    assert list(bench.SUITES) == ["learners", "drift", "regression", "end-to-end", "memory",
+                                  "feeds"]
     assert list(bench.STREAMS) == ["sea", "agrawal", "hyperplane", "rbf10", "rbf100", "led"]
     assert bench.STREAMS["rbf100"].min_ratio == 50 and bench.STREAMS["sea"].min_ratio == 100
     with pytest.raises(SapwoodError, match="suite must be one of"):
