@@ -194,8 +194,9 @@ def cli() -> None:
 @click.option("--idle-exit", type=float, default=None,
               help="With --follow: end after this many seconds without new records.")
 @click.option("--labels", "label_sources", multiple=True, metavar="SOURCE",
-              help="Labels that arrive later: rows of id, target and time, joined to "
-                   "the records by id; repeatable.")
+              help="Labels that arrive later, joined to the records by id: files of id, "
+                   "target and time rows (repeatable), or one mqtt:// or redis:// URL "
+                   "polled once per batch of records.")
 @click.option("--label-window", type=int, default=None,
               help="Records a record waits for its label before it is dropped [10000].")
 @click.option("--label-seconds", type=float, default=None,

@@ -32,9 +32,20 @@ What happens to a record
 Memory is bounded: at most ``window`` records (their features, prediction, time, line
 and id) and ``window`` early labels are held, whatever the stream does.
 
-Limitations: label sources are files read in step with the records (a live label topic
-or a followed label file needs a reader thread, not built yet); a record's features
-learned at label time are those it arrived with.
+Label sources
+-------------
+Files are read in step with the records, so the order above depends on the data alone.
+A broker (one ``mqtt[s]://`` topic filter or ``redis[s]://`` stream URL) is live: once
+per batch of records it is polled for what has arrived so far (a read that waits about a
+millisecond), and labels that have not arrived yet are met with later records. The order
+then also depends on when labels reach the broker, so a run is not repeatable the way a
+file run is; a checkpoint still holds the label source's position and the labels read
+but not yet applied, and label messages are acknowledged only once such a checkpoint is
+written, so after a restart none is lost or applied twice. When the records end, labels
+that have not arrived by the last poll stay unacknowledged for the next run.
+
+Limitations: standard input and a followed file are not label sources; a record's
+features learned at label time are those it arrived with.
 """
 
 from __future__ import annotations
@@ -45,6 +56,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from connectors.broker_payloads import BROKERS, open_broker, scheme_of
 from connectors.sources import open_sources
 
 from .encoding import EncodedBatch
@@ -54,6 +66,10 @@ if TYPE_CHECKING:  # pragma: no cover
     from .engine import LearnRun
 
 _NO_TIME = -math.inf
+
+POLL_SECONDS = 0.001
+"""How long a poll of a live label source waits for one more message before it gives up
+for this batch of records (the source's ``idle_exit`` and ``linger``)."""
 
 
 def watermarks(times: np.ndarray | None, start: float) -> np.ndarray:
@@ -301,11 +317,20 @@ class LabelFeed:
 
     def __init__(self, run: "LearnRun", specs: list[str], batch_rows: int) -> None:
         self.run = run
-        self.source = open_sources(specs, None, batch_rows)
-        if not hasattr(self.source, "seek") or not getattr(self.source, "resumable", True):
-            raise ConfigError("labels must come from files (standard input and brokers "
-                              "are not label sources yet)")
+        self.live = any(scheme_of(spec) in BROKERS for spec in specs)
+        if self.live:
+            if len(specs) != 1:
+                raise ConfigError("labels from a broker come from one URL, not with others")
+            self.source = open_broker(specs[0], batch_rows, idle_exit=POLL_SECONDS,
+                                      linger=POLL_SECONDS)
+        else:
+            self.source = open_sources(specs, None, batch_rows)
+            if not hasattr(self.source, "seek") or \
+                    not getattr(self.source, "resumable", True):
+                raise ConfigError("labels must come from files or a broker (standard "
+                                  "input cannot be read again after a restart)")
         self._batches = None
+        self._may_poll = True
         self.position: dict | None = None
         self.high = _NO_TIME
         self.ended = False
@@ -320,15 +345,26 @@ class LabelFeed:
             self.source.seek(position)
             self.position = position
 
+    def poll_again(self) -> None:
+        """A live source may be asked once more for what has arrived (called once per
+        batch of records)."""
+        self._may_poll = True
+
     def _pull(self) -> bool:
-        """Read and encode label batches until some labels are waiting or the source
-        ends; False at its end."""
-        if self._batches is None:
-            self._batches = iter(self.source.batches())
+        """Read and encode label batches until some labels are waiting; False at the end
+        of a file source, or when a live source has nothing more for now."""
         while not len(self.ids):
+            if self._batches is None:
+                if self.live and not self._may_poll:
+                    return False
+                self._batches = iter(self.source.batches())
             raw = next(self._batches, None)
             if raw is None:
-                self.ended = True
+                self._batches = None
+                if self.live:
+                    self._may_poll = False   # nothing more now: ask with the next records
+                else:
+                    self.ended = True
                 return False
             quarantine = self.run.quarantine
             before = quarantine.count
@@ -425,6 +461,7 @@ class DelayedLabels:
     def consume(self, batch: EncodedBatch) -> None:
         """Records of one batch, in order, with the labels that fall between them."""
         self._ready()
+        self.feed.poll_again()
         marks = watermarks(batch.times, self.watermark)
         n, pos = len(batch), 0
         while pos < n:
@@ -443,8 +480,10 @@ class DelayedLabels:
                 else self.watermark
 
     def finish(self) -> None:
-        """The records ended: the labels still to come are applied."""
+        """The records ended: the labels still to come (from a live source: those that
+        have arrived) are applied."""
         self._ready()
+        self.feed.poll_again()
         while self.feed.next_mark() is not None:
             self._apply(*self.feed.take_before(math.inf))
 

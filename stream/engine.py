@@ -426,6 +426,8 @@ class LearnRun:
                 self.stopped = self.stopped or exc.reason
             if self.stopped is None and self.delayed is not None:
                 self.delayed.finish()
+                if not job.checkpoint_path:
+                    self.delayed.commit()   # nothing durable to wait for
             self.finished = self.clock()
             if self.stopped is None and self.snapshots is not None \
                     and self.task is not None \
@@ -500,6 +502,8 @@ class LearnRun:
         if not job.checkpoint_path:
             if self.position is not None and hasattr(self.source, "commit"):
                 self.source.commit(self.position)  # nothing durable to wait for
+            if self.delayed is not None:
+                self.delayed.commit()
             return
         limit = getattr(self.source, "max_uncommitted", None)
         every = job.checkpoint_every

@@ -33,6 +33,7 @@ from river import metrics as river_metrics
 from river.datasets import synth
 
 import stream.engine as engine
+from connectors.local_brokers import REDIS_SERVER, LocalRedis
 from stream import checkpoint as ck
 from tests.checkpoint_copies import keep_every_checkpoint
 from stream.classifier import TreeClassifier
@@ -154,6 +155,59 @@ def test_labels_k_records_late_match_a_plain_reference_loop(files, sea, rows):
     learn(files, "inline-rules", [files["inline"]])
     assert load_rules(str(files["dir"] / f"k25-{rows}.sap"))[1] == \
         load_rules(str(files["dir"] / "inline-rules.sap"))[1]
+
+
+# ------------------------------------------------------------------------ live labels
+
+@pytest.mark.skipif(REDIS_SERVER is None, reason="redis-server is not installed "
+                    "(bash .ci/brokers.sh install adds it)")
+@pytest.mark.parametrize("rows", [7, 65536])
+def test_labels_from_a_redis_stream_join_like_labels_from_a_file(files, sea, tmp_path, rows):
+    """Labels 25 records late, all on a Redis stream before the run: polled once per batch
+    of records, they join exactly as the same labels from a file (same predictions,
+    metrics and tree), and every label entry is acknowledged (XPENDING, as documented by
+    Redis, reports none left)."""
+    k = 25
+    late = labels_file(files, sea, "labels25-live.csv", lambda n: k)
+    server = LocalRedis(tmp_path, durable=False).start()
+    try:
+        client = server.client()
+        pipe = client.pipeline(transaction=False)
+        with open(late, newline="", encoding="utf-8") as rows_in:
+            for row in csv.DictReader(rows_in):
+                pipe.xadd("labels", row)
+        pipe.execute()
+        from_file = learn(files, f"k25-file-{rows}", [files["records"]], labels=[late],
+                          batch_rows=rows)
+        live = learn(files, f"k25-live-{rows}", [files["records"]],
+                     labels=[server.url(stream="labels")], batch_rows=rows)
+        d = files["dir"]
+        assert predictions(d / f"k25-live-{rows}.jsonl") == \
+            predictions(d / f"k25-file-{rows}.jsonl")
+        assert (d / f"k25-live-{rows}.metrics").read_text() == \
+            (d / f"k25-file-{rows}.metrics").read_text()
+        assert {k: v for k, v in live.items() if k not in TIMING} == \
+            {k: v for k, v in from_file.items() if k not in TIMING}
+        assert live["labels"]["joined"] == from_file["labels"]["joined"] > N - 2 * k
+        assert client.xpending("labels", "sapwood")["pending"] == 0
+    finally:
+        server.stop()
+
+
+@pytest.mark.skipif(REDIS_SERVER is None, reason="redis-server is not installed "
+                    "(bash .ci/brokers.sh install adds it)")
+def test_an_empty_label_stream_does_not_hold_the_records_up(files, tmp_path):
+    """Nothing has arrived on the label stream: the records are predicted and wait, the
+    run ends, and the waiting ones are counted, none learned."""
+    server = LocalRedis(tmp_path, durable=False).start()
+    try:
+        server.client().xadd("labels", {"id": "nobody", "label": "1", "time": str(T0)})
+        summary = learn(files, "empty-live", [files["records"]],
+                        labels=[server.url(stream="labels")], label_window=100)
+    finally:
+        server.stop()
+    assert summary["records"] == N and summary["learned"] == 0
+    assert summary["labels"]["joined"] == 0
 
 
 # ------------------------------------------------------------------------ windows
