@@ -33,7 +33,7 @@ from river import metrics as river_metrics
 from river.datasets import synth
 
 import stream.engine as engine
-from connectors.local_brokers import REDIS_SERVER, LocalRedis
+from connectors.local_brokers import MOSQUITTO, REDIS_SERVER, LocalMosquitto, LocalRedis
 from stream import checkpoint as ck
 from tests.checkpoint_copies import keep_every_checkpoint
 from stream.classifier import TreeClassifier
@@ -208,6 +208,47 @@ def test_an_empty_label_stream_does_not_hold_the_records_up(files, tmp_path):
         server.stop()
     assert summary["records"] == N and summary["learned"] == 0
     assert summary["labels"]["joined"] == 0
+
+
+@pytest.mark.skipif(MOSQUITTO is None, reason="mosquitto is not installed "
+                    "(bash .ci/brokers.sh install adds it)")
+def test_labels_from_an_mqtt_topic_are_joined(files, sea, tmp_path):
+    """Labels published (QoS 1) to a topic while sapwood's persistent session was away
+    (MQTT 3.1.1/5.0: the broker keeps them for the session) reach the run and are joined.
+    When they arrive depends on the broker, so the check is that labels were joined and
+    that each joined record was learned with its own label, not the exact counts."""
+    import paho.mqtt.client as mqtt
+    from paho.mqtt.enums import CallbackAPIVersion
+
+    from connectors.mqtt import MqttSource
+
+    late = labels_file(files, sea, "labels-mqtt.csv", lambda n: 25)
+    broker = LocalMosquitto(tmp_path).start()
+    try:
+        url = broker.url("site/labels", client_id="sapwood-labels")
+        session = MqttSource(url, idle_exit=0)       # subscribe once: the session exists
+        for _ in session.batches():
+            pass
+        session.close()
+        client = mqtt.Client(CallbackAPIVersion.VERSION2, protocol=mqtt.MQTTv5)
+        client.connect("127.0.0.1", broker.port)
+        client.loop_start()
+        with open(late, newline="", encoding="utf-8") as rows_in:
+            infos = [client.publish("site/labels", json.dumps(row), qos=1)
+                     for row in csv.DictReader(rows_in)]
+        for info in infos:
+            info.wait_for_publish(10)
+        client.disconnect()
+        client.loop_stop()
+        summary = learn(files, "mqtt-live", [files["records"]], labels=[url], batch_rows=7)
+    finally:
+        broker.stop()
+    assert summary["records"] == N
+    assert summary["labels"]["joined"] > 0
+    assert summary["learned"] == summary["labels"]["joined"]
+    # every record learned was scored against its own label: accuracy is that of a tree
+    # learning SEA, far above the 50 % a mismatched join would give
+    assert summary["accuracy"] > 0.75
 
 
 # ------------------------------------------------------------------------ windows
