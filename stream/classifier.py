@@ -20,11 +20,12 @@ from .classifier_kernel import (has_room, leaf_cap, learn_batch, predict_batch, 
                                 worst_case)
 from .errors import ConfigError
 from .settings import TreeSettings
-from .tables import (CHILD_START, KIND, LEAF, N_CHILDREN, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER,
-                     EV_RECORD, EVENT_NAMES, S_ACTIVE, S_ALARMS, S_ALTS,
-                     S_CHILD_USED, S_CLASSES_SEEN, S_DEACTIVATED, S_DROPS, S_EVENTS,
-                     S_FREE_NODES, S_LEARNED, S_LEAVES, S_NODES, S_PRUNED, S_ROOT, S_SPLITS,
-                     S_STARTS, S_SWAPS, ClassifierTables, allocate, capacities, grow)
+from .tables import (EVENT_NAMES, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER,
+                     EV_RECORD, S_ALARMS, S_ALTS, S_CHILD_USED, S_CLASSES_SEEN,
+                     S_DEACTIVATED, S_DROPS, S_EVENTS, S_FREE_NODES, S_LEAVES, S_NODES,
+                     S_PRUNED, S_SPLITS, S_STARTS, S_SWAPS, ClassifierTables, allocate,
+                     capacities, grow)
+from .tree_views import MainTreeViews
 
 
 @dataclasses.dataclass(frozen=True)
@@ -55,7 +56,7 @@ class Scored:
     leaf: np.ndarray
 
 
-class TreeClassifier:
+class TreeClassifier(MainTreeViews):
     """An incremental Hoeffding tree over numeric and categorical features.
 
     Parameters
@@ -68,6 +69,8 @@ class TreeClassifier:
     settings
         How the tree grows; :class:`stream.settings.TreeSettings` defaults if omitted.
     """
+
+    _shape = staticmethod(tree_shape)
 
     def __init__(self, feature_names: list[str], feature_kinds: list[str],
                  settings: TreeSettings | None = None) -> None:
@@ -221,48 +224,6 @@ class TreeClassifier:
         return model
 
     # ------------------------------------------------------------------ introspection
-    @property
-    def root(self) -> int:
-        """Node id of the main tree's root."""
-        return int(self.tables_.state[S_ROOT])
-
-    def main_nodes(self) -> np.ndarray:
-        """Ids of the main tree's nodes, parents before children."""
-        t = self.tables_
-        out, stack = [], [self.root]
-        while stack:
-            n = stack.pop()
-            out.append(n)
-            if t.node_i[n, KIND] != LEAF:
-                start, count = t.node_i[n, CHILD_START], t.node_i[n, N_CHILDREN]
-                stack.extend(int(c) for c in t.child_table[start:start + count][::-1]
-                             if c >= 0)
-        return np.array(out, np.int64)
-
-    @property
-    def n_nodes(self) -> int:
-        """Nodes of the main tree."""
-        return int(tree_shape(self.tables_)[0])
-
-    @property
-    def n_leaves(self) -> int:
-        """Leaves of the main tree."""
-        return int(tree_shape(self.tables_)[1])
-
-    @property
-    def n_active_leaves(self) -> int:
-        """Leaves holding statistics (alternate subtrees' included)."""
-        return int(self.tables_.state[S_ACTIVE])
-
-    @property
-    def depth(self) -> int:
-        """Edges on the longest root-to-leaf path of the main tree (0 for a lone root)."""
-        return int(tree_shape(self.tables_)[2])
-
-    @property
-    def records_learned(self) -> int:
-        return int(self.tables_.state[S_LEARNED])
-
     def counters(self) -> dict:
         """Growth counters: splits, prepruned attempts, deactivated leaves, classes seen."""
         s = self.tables_.state

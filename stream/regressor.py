@@ -19,15 +19,15 @@ import numpy as np
 from .classifier import DriftEvent
 from .errors import ConfigError, ModelFileError
 from .regression_settings import RegressionSettings
-from .regression_tables import (CHILD_START, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER,
-                                EV_RECORD, EVENT_NAMES, KIND, LEAF, N_CHILDREN, S_ACTIVE,
-                                S_ALARMS, S_ALTS, S_CHILD_USED, S_DEACTIVATED, S_DROPS,
-                                S_EVENTS, S_FREE_NODES, S_LEARNED, S_LEAVES, S_NODES, S_ROOT,
-                                S_SPLITS, S_STARTS, S_SWAPS, RegressorTables, allocate,
-                                capacities, check_tables, grow)
+from .regression_tables import (EVENT_NAMES, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE,
+                                EV_OTHER, EV_RECORD, S_ALARMS, S_ALTS, S_CHILD_USED,
+                                S_DEACTIVATED, S_DROPS, S_EVENTS, S_FREE_NODES, S_LEAVES,
+                                S_NODES, S_SPLITS, S_STARTS, S_SWAPS, RegressorTables,
+                                allocate, capacities, check_tables, grow)
 from .regressor_kernel import (has_room, leaf_cap, learn_batch, predict_batch, tree_shape,
                                worst_case)
 from .rules import node_conditions
+from .tree_views import MainTreeViews
 
 
 @dataclasses.dataclass
@@ -39,7 +39,7 @@ class ScoredValues:
     leaf: np.ndarray
 
 
-class TreeRegressor:
+class TreeRegressor(MainTreeViews):
     """An incremental Hoeffding regression tree over numeric and categorical features.
 
     Parameters
@@ -53,6 +53,8 @@ class TreeRegressor:
         How the tree grows; :class:`stream.regression_settings.RegressionSettings`
         defaults if omitted.
     """
+
+    _shape = staticmethod(tree_shape)
 
     def __init__(self, feature_names: list[str], feature_kinds: list[str],
                  settings: RegressionSettings | None = None) -> None:
@@ -209,48 +211,6 @@ class TreeRegressor:
         return model
 
     # ------------------------------------------------------------------ introspection
-    @property
-    def root(self) -> int:
-        """Node id of the main tree's root."""
-        return int(self.tables_.state[S_ROOT])
-
-    def main_nodes(self) -> np.ndarray:
-        """Ids of the main tree's nodes, parents before children."""
-        t = self.tables_
-        out, stack = [], [self.root]
-        while stack:
-            n = stack.pop()
-            out.append(n)
-            if t.node_i[n, KIND] != LEAF:
-                start, count = t.node_i[n, CHILD_START], t.node_i[n, N_CHILDREN]
-                stack.extend(int(c) for c in t.child_table[start:start + count][::-1]
-                             if c >= 0)
-        return np.array(out, np.int64)
-
-    @property
-    def n_nodes(self) -> int:
-        """Nodes of the main tree."""
-        return int(tree_shape(self.tables_)[0])
-
-    @property
-    def n_leaves(self) -> int:
-        """Leaves of the main tree."""
-        return int(tree_shape(self.tables_)[1])
-
-    @property
-    def n_active_leaves(self) -> int:
-        """Leaves holding observers (alternate subtrees' included)."""
-        return int(self.tables_.state[S_ACTIVE])
-
-    @property
-    def depth(self) -> int:
-        """Edges on the longest root-to-leaf path of the main tree (0 for a lone root)."""
-        return int(tree_shape(self.tables_)[2])
-
-    @property
-    def records_learned(self) -> int:
-        return int(self.tables_.state[S_LEARNED])
-
     def counters(self) -> dict:
         """Growth and drift counters (the drift keys are the classifier's)."""
         s = self.tables_.state

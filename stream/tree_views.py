@@ -1,0 +1,63 @@
+"""Read-only views of a tree's main part, shared by the classifier and the regressor.
+
+Both learners keep their nodes in tables with the same node layout (``tables.py`` and
+``regression_tables.py`` agree on the columns used here); :class:`MainTreeViews` reads
+them. A subclass holds ``tables_`` and sets ``_shape`` to its compiled ``tree_shape``.
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+
+from .tables import CHILD_START, KIND, LEAF, N_CHILDREN, S_ACTIVE, S_LEARNED, S_ROOT
+
+
+class MainTreeViews:
+    """Root, nodes, size and depth of the main tree (alternates not included)."""
+
+    tables_: tuple
+    _shape: Callable
+
+    @property
+    def root(self) -> int:
+        """Node id of the main tree's root."""
+        return int(self.tables_.state[S_ROOT])
+
+    def main_nodes(self) -> np.ndarray:
+        """Ids of the main tree's nodes, parents before children."""
+        t = self.tables_
+        out, stack = [], [self.root]
+        while stack:
+            n = stack.pop()
+            out.append(n)
+            if t.node_i[n, KIND] != LEAF:
+                start, count = t.node_i[n, CHILD_START], t.node_i[n, N_CHILDREN]
+                stack.extend(int(c) for c in t.child_table[start:start + count][::-1]
+                             if c >= 0)
+        return np.array(out, np.int64)
+
+    @property
+    def n_nodes(self) -> int:
+        """Nodes of the main tree."""
+        return int(self._shape(self.tables_)[0])
+
+    @property
+    def n_leaves(self) -> int:
+        """Leaves of the main tree."""
+        return int(self._shape(self.tables_)[1])
+
+    @property
+    def n_active_leaves(self) -> int:
+        """Leaves holding statistics (alternate subtrees' included)."""
+        return int(self.tables_.state[S_ACTIVE])
+
+    @property
+    def depth(self) -> int:
+        """Edges on the longest root-to-leaf path of the main tree (0 for a lone root)."""
+        return int(self._shape(self.tables_)[2])
+
+    @property
+    def records_learned(self) -> int:
+        return int(self.tables_.state[S_LEARNED])
