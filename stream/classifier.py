@@ -16,8 +16,7 @@ import dataclasses
 
 import numpy as np
 
-from .classifier_kernel import (has_room, leaf_cap, learn_batch, predict_batch, tree_shape,
-                                worst_case)
+from .classifier_kernel import has_room, leaf_cap, learn_batch, predict_batch, worst_case
 from .errors import ConfigError
 from .settings import TreeSettings
 from .tables import (EVENT_NAMES, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER,
@@ -25,7 +24,7 @@ from .tables import (EVENT_NAMES, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHE
                      S_DEACTIVATED, S_DROPS, S_EVENTS, S_FREE_NODES, S_LEAVES, S_NODES,
                      S_PRUNED, S_SPLITS, S_STARTS, S_SWAPS, ClassifierTables, allocate,
                      capacities, grow)
-from .tree_views import MainTreeViews
+from .tree_views import MainTreeViews, check_features
 
 
 @dataclasses.dataclass(frozen=True)
@@ -70,18 +69,9 @@ class TreeClassifier(MainTreeViews):
         How the tree grows; :class:`stream.settings.TreeSettings` defaults if omitted.
     """
 
-    _shape = staticmethod(tree_shape)
-
     def __init__(self, feature_names: list[str], feature_kinds: list[str],
                  settings: TreeSettings | None = None) -> None:
-        if len(feature_names) != len(feature_kinds):
-            raise ConfigError("feature names and kinds must have the same length, got "
-                              f"{len(feature_names)} and {len(feature_kinds)}")
-        bad = [k for k in feature_kinds if k not in ("numeric", "category")]
-        if bad:
-            raise ConfigError(f"feature kind must be 'numeric' or 'category', got {bad[0]!r}")
-        if not feature_names:
-            raise ConfigError("a tree needs at least one feature, got none")
+        check_features(feature_names, feature_kinds)
         self.settings = settings or TreeSettings()
         self.feature_names = list(feature_names)
         self.feature_kinds = list(feature_kinds)

@@ -31,6 +31,8 @@ from .drift import (
     page_hinkley_update,
 )
 from .jit import njit
+from .node_kernel import (add_event, deactivate, heaviest_child, kill_subtree, next_node,
+                          place_leaf, recycle_dead, swap_in_alternate, take_detector_row)
 from .observers import (
     category_best,
     category_equals_post,
@@ -69,21 +71,13 @@ from .tables import (
     C_PREPRUNE,
     C_SWAP_AFTER,
     CHILD_START,
-    CREATED,
-    DEAD,
     DEPTH,
     DET,
     EQUALS,
     ERR_N,
     ERR_SUM,
-    EV_AFTER,
     EV_ALARM,
-    EV_BEFORE,
     EV_DROP,
-    EV_KIND,
-    EV_NODE,
-    EV_OTHER,
-    EV_RECORD,
     EV_START,
     EV_SWAP,
     F_ADWIN_DELTA,
@@ -100,7 +94,6 @@ from .tables import (
     FM_KIND,
     FM_LOCAL,
     FM_SEEN,
-    FREE,
     G_LLA,
     HITS,
     KIND,
@@ -124,7 +117,6 @@ from .tables import (
     S_DEAD,
     S_DROPS,
     S_EVENTS,
-    S_FREE_DETS,
     S_FREE_NODES,
     S_FREE_TOP,
     S_LEARNED,
@@ -135,11 +127,9 @@ from .tables import (
     S_ROOT,
     S_SPLITS,
     S_STARTS,
-    S_SWAPS,
     SCORED,
     SLOT,
     STATUS,
-    SWAPPED,
     THRESHOLD,
     WEIGHT,
 )
@@ -149,38 +139,6 @@ GAUSSIAN, HISTOGRAM = 0, 1
 
 
 # ---------------------------------------------------------------- routing
-
-@njit
-def heaviest_child(node_i, node_f, child_table, n: int) -> int:
-    """The child that has seen the most weight (ties: the first); missing values go there."""
-    best = -1
-    best_weight = -1.0
-    start = node_i[n, CHILD_START]
-    for i in range(node_i[n, N_CHILDREN]):
-        c = child_table[start + i]
-        if c >= 0 and node_f[c, WEIGHT] > best_weight:
-            best = c
-            best_weight = node_f[c, WEIGHT]
-    return best
-
-
-@njit
-def next_node(node_i, node_f, child_table, n: int, x) -> int:
-    """The child of branch ``n`` for record ``x``, or -1 for a category with no branch yet."""
-    v = x[node_i[n, FEATURE]]
-    if math.isnan(v):
-        return heaviest_child(node_i, node_f, child_table, n)
-    start = node_i[n, CHILD_START]
-    kind = node_i[n, KIND]
-    if kind == NUMERIC:
-        return child_table[start] if v <= node_f[n, THRESHOLD] else child_table[start + 1]
-    if kind == EQUALS:
-        return child_table[start] if v == node_f[n, THRESHOLD] else child_table[start + 1]
-    code = int(v)
-    if code < node_i[n, N_CHILDREN]:
-        return child_table[start + code]
-    return -1
-
 
 @njit
 def route(node_i, node_f, child_table, root: int, x, path):
@@ -431,36 +389,10 @@ def has_room(t) -> bool:
 def new_leaf(t, parent: int, branch: int, status: int, record: int) -> int:
     """A fresh inactive leaf under ``parent`` at child position ``branch``, with empty
     counts and, when drift detection is on, a fresh detector."""
-    top = t.state[S_FREE_NODES]
-    if top > 0:
-        n = t.free_nodes[top - 1]
-        t.state[S_FREE_NODES] = top - 1
-    else:
-        n = t.state[S_NODES]
-        t.state[S_NODES] = n + 1
-    t.state[S_LEAVES] += 1
-    t.state[S_CREATED] += 1
-    t.node_i[n, :] = 0
-    t.node_f[n, :] = 0.0
+    n = place_leaf(t, parent, branch, status, record)
     t.counts[n, :] = 0.0
-    t.node_i[n, KIND] = LEAF
-    t.node_i[n, FEATURE] = -1
-    t.node_i[n, PARENT] = parent
-    t.node_i[n, BRANCH] = branch
-    t.node_i[n, DEPTH] = t.node_i[parent, DEPTH] + 1 if parent >= 0 else 0
-    t.node_i[n, CREATED] = record
-    t.node_i[n, SLOT] = -1
-    t.node_i[n, ALT] = -1
-    t.node_i[n, ALT_OF] = -1
-    t.node_i[n, SWAPPED] = -1
-    t.node_i[n, STATUS] = status
-    t.node_i[n, DET] = -1
-    if t.node_i[n, DEPTH] > t.state[S_MAX_DEPTH]:
-        t.state[S_MAX_DEPTH] = t.node_i[n, DEPTH]
     if t.cfg_i[C_DETECTOR] != NO_DETECTOR:
-        top = t.state[S_FREE_DETS] - 1
-        t.state[S_FREE_DETS] = top
-        t.node_i[n, DET] = t.free_dets[top]
+        take_detector_row(t, n)
         fresh_detector(t, n)
     return n
 
@@ -491,19 +423,6 @@ def activate(t, n: int) -> None:
         t.hist_counts[s] = 0.0
     t.node_i[n, SLOT] = s
     t.state[S_ACTIVE] += 1
-
-
-@njit
-def deactivate(t, n: int) -> None:
-    """Free leaf ``n``'s statistics slot; its class counts stay and it predicts by majority."""
-    s = t.node_i[n, SLOT]
-    if s < 0:
-        return
-    top = t.state[S_FREE_TOP]
-    t.free_slots[top] = s
-    t.state[S_FREE_TOP] = top + 1
-    t.node_i[n, SLOT] = -1
-    t.state[S_ACTIVE] -= 1
 
 
 @njit
@@ -699,20 +618,6 @@ def attempt_split(t, n: int, record: int) -> None:
 # ---------------------------------------------------------------- drift: alternates
 
 @njit
-def add_event(t, kind: int, node: int, record: int, other: int, before: float,
-              after: float) -> None:
-    """Append an event for Python to collect after the call."""
-    e = t.state[S_EVENTS]
-    t.events_i[e, EV_KIND] = kind
-    t.events_i[e, EV_NODE] = node
-    t.events_i[e, EV_RECORD] = record
-    t.events_i[e, EV_OTHER] = other
-    t.events_f[e, EV_BEFORE] = before
-    t.events_f[e, EV_AFTER] = after
-    t.state[S_EVENTS] = e + 1
-
-
-@njit
 def error_rate(node_f, n: int) -> float:
     """Node ``n``'s error rate since its estimate was last reset (0 before any record)."""
     count = node_f[n, ERR_N]
@@ -720,83 +625,12 @@ def error_rate(node_f, n: int) -> float:
 
 
 @njit
-def kill_subtree(t, root: int) -> None:
-    """Mark every node under ``root`` (alternates hanging there included) dead: free their
-    statistics slots and detectors. Python recycles dead node ids between calls."""
-    stack = np.empty(t.state[S_NODES] + 1, np.int64)
-    stack[0] = root
-    top = 1
-    while top > 0:
-        top -= 1
-        n = stack[top]
-        if t.node_i[n, STATUS] >= DEAD:
-            continue
-        t.node_i[n, STATUS] = DEAD
-        t.state[S_DEAD] += 1
-        d = t.node_i[n, DET]
-        if d >= 0:
-            t.free_dets[t.state[S_FREE_DETS]] = d
-            t.state[S_FREE_DETS] += 1
-            t.node_i[n, DET] = -1
-        a = t.node_i[n, ALT]
-        if a >= 0:
-            t.node_i[n, ALT] = -1
-            t.state[S_ALTS] -= 1
-            stack[top] = a
-            top += 1
-        if t.node_i[n, KIND] == LEAF:
-            deactivate(t, n)
-            t.state[S_LEAVES] -= 1
-            continue
-        start = t.node_i[n, CHILD_START]
-        for i in range(t.node_i[n, N_CHILDREN]):
-            c = t.child_table[start + i]
-            if c >= 0:
-                stack[top] = c
-                top += 1
-
-
-@njit
-def recycle_dead(t) -> None:
-    """Put dead nodes' ids on the free stack (lowest id on top), so new nodes reuse them.
-    Runs at the start of the record after the deaths, once their events were read."""
-    top = t.state[S_FREE_NODES]
-    for n in range(t.state[S_NODES] - 1, -1, -1):
-        if t.node_i[n, STATUS] == DEAD:
-            t.node_i[n, STATUS] = FREE
-            t.free_nodes[top] = n
-            top += 1
-    t.state[S_FREE_NODES] = top
-    t.state[S_DEAD] = 0
-
-
-@njit
-def set_status(t, root: int, status: int) -> None:
-    """Give every node under ``root`` (not the alternates hanging there) ``status``."""
-    stack = np.empty(t.state[S_NODES] + 1, np.int64)
-    stack[0] = root
-    top = 1
-    while top > 0:
-        top -= 1
-        n = stack[top]
-        t.node_i[n, STATUS] = status
-        if t.node_i[n, KIND] == LEAF:
-            continue
-        start = t.node_i[n, CHILD_START]
-        for i in range(t.node_i[n, N_CHILDREN]):
-            c = t.child_table[start + i]
-            if c >= 0:
-                stack[top] = c
-                top += 1
-
-
-@njit
 def start_alternate(t, n: int, record: int) -> int:
     """Grow a fresh alternate leaf beside branch ``n`` (replacing an older alternate)."""
     old = t.node_i[n, ALT]
     if old >= 0:
-        add_event(t, EV_DROP, n, record, old, error_rate(t.node_f, n),
-                  error_rate(t.node_f, old))
+        add_event(t.events_i, t.events_f, t.state, EV_DROP, n, record, old,
+                  error_rate(t.node_f, n), error_rate(t.node_f, old))
         kill_subtree(t, old)
         t.state[S_DROPS] += 1
         t.state[S_ALTS] -= 1
@@ -807,31 +641,7 @@ def start_alternate(t, n: int, record: int) -> int:
     activate(t, a)
     t.state[S_ALTS] += 1
     t.state[S_STARTS] += 1
-    add_event(t, EV_START, n, record, a, 0.0, 0.0)
-    return a
-
-
-@njit
-def swap_in_alternate(t, n: int, record: int) -> int:
-    """Put ``n``'s alternate where ``n`` is; ``n``'s subtree dies. Returns the new node."""
-    a = t.node_i[n, ALT]
-    t.node_i[n, ALT] = -1
-    t.state[S_ALTS] -= 1
-    owner = t.node_i[n, ALT_OF]
-    if owner >= 0:                         # n is itself an alternate: a replaces it there
-        t.node_i[owner, ALT] = a
-        t.node_i[a, ALT_OF] = owner
-    else:
-        t.node_i[a, ALT_OF] = -1
-        if n == t.state[S_ROOT]:
-            t.state[S_ROOT] = a
-        else:
-            parent = t.node_i[n, PARENT]
-            t.child_table[t.node_i[parent, CHILD_START] + t.node_i[n, BRANCH]] = a
-    set_status(t, a, t.node_i[n, STATUS])
-    t.node_i[a, SWAPPED] = record
-    kill_subtree(t, n)
-    t.state[S_SWAPS] += 1
+    add_event(t.events_i, t.events_f, t.state, EV_START, n, record, a, 0.0, 0.0)
     return a
 
 
@@ -879,7 +689,7 @@ def react(t, n: int, alarm: bool, before: float, record: int) -> int:
         else:
             after = error_rate(t.node_f, n)
             rose = page_hinkley_rose(t.ph_state, d, t.cfg_f[F_PH_THRESHOLD])
-        add_event(t, EV_ALARM, n, record, -1, before, after)
+        add_event(t.events_i, t.events_f, t.state, EV_ALARM, n, record, -1, before, after)
         # the error estimate restarts at every alarm: it is what the swap test weighs
         # against an alternate grown from here on
         t.node_f[n, ERR_SUM] = 0.0
@@ -901,10 +711,10 @@ def react(t, n: int, alarm: bool, before: float, record: int) -> int:
                       * math.log(2.0 / t.cfg_f[F_SWAP_SIGNIFICANCE])
                       * (1.0 / n_alt + 1.0 / n_main))
     if bound < p_main - p_alt:
-        add_event(t, EV_SWAP, n, record, a, p_main, p_alt)
+        add_event(t.events_i, t.events_f, t.state, EV_SWAP, n, record, a, p_main, p_alt)
         return swap_in_alternate(t, n, record)
     if bound < p_alt - p_main:
-        add_event(t, EV_DROP, n, record, a, p_main, p_alt)
+        add_event(t.events_i, t.events_f, t.state, EV_DROP, n, record, a, p_main, p_alt)
         t.node_i[n, ALT] = -1
         t.state[S_ALTS] -= 1
         t.state[S_DROPS] += 1
@@ -1182,35 +992,6 @@ def learn_batch(t, X, y, start: int, rank, pred, confidence, leaf) -> int:
             room_left = 0
             splits = state[S_SPLITS]
     return X.shape[0]
-
-
-@njit
-def tree_shape(t):
-    """(nodes, leaves, depth) of the main tree; depth counts edges from its root."""
-    stack = np.empty(t.state[S_NODES] + 1, np.int64)
-    root = t.state[S_ROOT]
-    stack[0] = root
-    top = 1
-    nodes = 0
-    leaves = 0
-    deepest = 0
-    while top > 0:
-        top -= 1
-        n = stack[top]
-        nodes += 1
-        d = t.node_i[n, DEPTH] - t.node_i[root, DEPTH]
-        if d > deepest:
-            deepest = d
-        if t.node_i[n, KIND] == LEAF:
-            leaves += 1
-            continue
-        start = t.node_i[n, CHILD_START]
-        for i in range(t.node_i[n, N_CHILDREN]):
-            c = t.child_table[start + i]
-            if c >= 0:
-                stack[top] = c
-                top += 1
-    return nodes, leaves, deepest
 
 
 @njit

@@ -60,8 +60,7 @@ import math
 
 from .jit import njit
 from .regression_tables import (ERR_N, ERR_SQ, ERR_SUM, ES_MAD, ES_MAD_WEIGHT, ES_MEAN,
-                                ES_WEIGHT, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER,
-                                EV_RECORD, S_EVENTS)
+                                ES_WEIGHT)
 
 SCALE_UNITS = 3.0
 """Mean absolute deviations of the target that make a normalised error of 1."""
@@ -155,16 +154,3 @@ def swap_verdict(node_f, n: int, a: int, after: int, significance: float):
         return DROP, m_node, m_alt
     return KEEP, m_node, m_alt
 
-
-@njit
-def add_event(events_i, events_f, state, kind: int, node: int, record: int, other: int,
-              before: float, after: float) -> None:
-    """Append an event for Python to collect after the call."""
-    e = state[S_EVENTS]
-    events_i[e, EV_KIND] = kind
-    events_i[e, EV_NODE] = node
-    events_i[e, EV_RECORD] = record
-    events_i[e, EV_OTHER] = other
-    events_f[e, EV_BEFORE] = before
-    events_f[e, EV_AFTER] = after
-    state[S_EVENTS] = e + 1

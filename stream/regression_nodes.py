@@ -1,18 +1,15 @@
 """Nodes of the regression tree: their birth, observer slots, detectors, and the life of
-alternate subtrees (started, swapped in, dropped, recycled).
+alternate subtrees (started, swapped in, dropped). Their death and recycling, shared with
+the classifier, are in :mod:`stream.node_kernel`.
 
 Contents
 --------
-new_leaf / fresh_detector / activate / deactivate
+new_leaf / fresh_detector / activate
     A leaf from the free-id stack (or the end of the table) with a fresh detector; an
-    observer slot given or taken back.
+    observer slot given (:func:`stream.node_kernel.deactivate` takes it back).
 leaf_bytes / leaf_cap / enforce_leaf_cap
     The memory budget of the active leaves' observers.
-kill_subtree / recycle_dead / set_status
-    A replaced or dropped subtree dies at once (its slots and detectors are freed);
-    its node ids are recycled at the start of the next record, after Python has read
-    the events that name them.
-start_alternate / swap_in_alternate / react
+start_alternate / react
     What a node does with its detector's verdict (Bifet & Gavalda, IDA 2009): an alarm
     where the error rose grows an alternate beside the node (leaves included); the
     swap test of :mod:`stream.regression_drift` puts the alternate in its place or
@@ -29,17 +26,16 @@ import numpy as np
 from .drift import ADWIN, NO_DETECTOR, adwin_mean, adwin_reset, page_hinkley_reset, \
     page_hinkley_rose
 from .jit import njit
-from .regression_drift import (DROP, SWAP, add_event, error_mean, reset_error,
-                               swap_verdict)
-from .regression_tables import (ALT, ALT_OF, ALTERNATE, BRANCH, CHILD_START, CREATED, DEAD,
-                                DEPTH, DET, ERR_LINEAR, ERR_MEAN, EV_ALARM, EV_DROP, EV_START,
-                                EV_SWAP, FEATURE, FREE, KIND, LAST_ATTEMPT, LEAF, N_CHILDREN,
-                                OBSERVED, PARENT, RC_DETECTOR, RC_MAX_DEPTH, RC_SWAP_AFTER,
-                                RF_MEMORY_BYTES, RF_PH_THRESHOLD, RF_SWAP_SIGNIFICANCE,
-                                S_ACTIVE, S_ALARMS, S_ALTS, S_CATS_SEEN, S_CREATED, S_DEACTIVATED,
-                                S_DEAD, S_DROPS, S_FREE_DETS, S_FREE_NODES, S_FREE_TOP,
-                                S_LEAVES, S_MAX_DEPTH, S_NODES, S_ROOT, S_STARTS, S_SWAPS, SLOT,
-                                STATUS, SWAPPED, Y_M2)
+from .node_kernel import (add_event, deactivate, kill_subtree, place_leaf, swap_in_alternate,
+                          take_detector_row)
+from .regression_drift import DROP, SWAP, error_mean, reset_error, swap_verdict
+from .regression_tables import (ALT, ALT_OF, ALTERNATE, BRANCH, DEPTH, DET, ERR_LINEAR,
+                                ERR_MEAN, EV_ALARM, EV_DROP, EV_START, EV_SWAP, KIND,
+                                LAST_ATTEMPT, LEAF, OBSERVED, PARENT, RC_DETECTOR, RC_MAX_DEPTH,
+                                RC_SWAP_AFTER, RF_MEMORY_BYTES, RF_PH_THRESHOLD,
+                                RF_SWAP_SIGNIFICANCE, S_ACTIVE, S_ALARMS, S_ALTS, S_CATS_SEEN,
+                                S_DEACTIVATED, S_DROPS, S_FREE_TOP, S_LEAVES, S_NODES, S_STARTS,
+                                SLOT, STATUS, Y_M2)
 
 
 # ---------------------------------------------------------------- leaves and slots
@@ -49,29 +45,7 @@ def new_leaf(t, parent: int, branch: int, status: int, record: int, model_from: 
     """An inactive leaf under ``parent`` at child position ``branch``: empty statistics,
     the linear model and faded errors of node ``model_from`` (none when -1) and, when
     drift detection is on, a fresh detector. Recycled ids are used first."""
-    top = t.state[S_FREE_NODES]
-    if top > 0:
-        n = t.free_nodes[top - 1]
-        t.state[S_FREE_NODES] = top - 1
-    else:
-        n = t.state[S_NODES]
-        t.state[S_NODES] = n + 1
-    t.state[S_LEAVES] += 1
-    t.state[S_CREATED] += 1
-    t.node_i[n, :] = 0
-    t.node_f[n, :] = 0.0
-    t.node_i[n, KIND] = LEAF
-    t.node_i[n, FEATURE] = -1
-    t.node_i[n, PARENT] = parent
-    t.node_i[n, BRANCH] = branch
-    t.node_i[n, DEPTH] = t.node_i[parent, DEPTH] + 1 if parent >= 0 else 0
-    t.node_i[n, CREATED] = record
-    t.node_i[n, SLOT] = -1
-    t.node_i[n, ALT] = -1
-    t.node_i[n, ALT_OF] = -1
-    t.node_i[n, SWAPPED] = -1
-    t.node_i[n, STATUS] = status
-    t.node_i[n, DET] = -1
+    n = place_leaf(t, parent, branch, status, record)
     t.lin_x[n] = 0.0
     if model_from >= 0:
         t.lin[n, :] = t.lin[model_from, :]
@@ -79,12 +53,8 @@ def new_leaf(t, parent: int, branch: int, status: int, record: int, model_from: 
         t.node_f[n, ERR_LINEAR] = t.node_f[model_from, ERR_LINEAR]
     else:
         t.lin[n, :] = 0.0
-    if t.node_i[n, DEPTH] > t.state[S_MAX_DEPTH]:
-        t.state[S_MAX_DEPTH] = t.node_i[n, DEPTH]
     if t.cfg_i[RC_DETECTOR] != NO_DETECTOR:
-        top = t.state[S_FREE_DETS] - 1
-        t.state[S_FREE_DETS] = top
-        t.node_i[n, DET] = t.free_dets[top]
+        take_detector_row(t, n)
         fresh_detector(t, n)
     return n
 
@@ -114,19 +84,6 @@ def activate(t, n: int) -> None:
     t.node_f[n, OBSERVED] = 0.0
     t.node_f[n, LAST_ATTEMPT] = 0.0
     t.state[S_ACTIVE] += 1
-
-
-@njit
-def deactivate(t, n: int) -> None:
-    """Free leaf ``n``'s observer slot; it keeps predicting and learning its models."""
-    s = t.node_i[n, SLOT]
-    if s < 0:
-        return
-    top = t.state[S_FREE_TOP]
-    t.free_slots[top] = s
-    t.state[S_FREE_TOP] = top + 1
-    t.node_i[n, SLOT] = -1
-    t.state[S_ACTIVE] -= 1
 
 
 # ---------------------------------------------------------------- memory budget
@@ -183,77 +140,6 @@ def enforce_leaf_cap(t) -> None:
 
 # ---------------------------------------------------------------- death and recycling
 
-@njit
-def kill_subtree(t, root: int) -> None:
-    """Mark every node under ``root`` (alternates hanging there included) dead: free their
-    observer slots and detectors at once. Their ids are recycled by :func:`recycle_dead`."""
-    stack = np.empty(t.state[S_NODES] + 1, np.int64)
-    stack[0] = root
-    top = 1
-    while top > 0:
-        top -= 1
-        n = stack[top]
-        if t.node_i[n, STATUS] >= DEAD:
-            continue
-        t.node_i[n, STATUS] = DEAD
-        t.state[S_DEAD] += 1
-        d = t.node_i[n, DET]
-        if d >= 0:
-            t.free_dets[t.state[S_FREE_DETS]] = d
-            t.state[S_FREE_DETS] += 1
-            t.node_i[n, DET] = -1
-        a = t.node_i[n, ALT]
-        if a >= 0:
-            t.node_i[n, ALT] = -1
-            t.state[S_ALTS] -= 1
-            stack[top] = a
-            top += 1
-        if t.node_i[n, KIND] == LEAF:
-            deactivate(t, n)
-            t.state[S_LEAVES] -= 1
-            continue
-        start = t.node_i[n, CHILD_START]
-        for i in range(t.node_i[n, N_CHILDREN]):
-            c = t.child_table[start + i]
-            if c >= 0:
-                stack[top] = c
-                top += 1
-
-
-@njit
-def recycle_dead(t) -> None:
-    """Put dead nodes' ids on the free stack (lowest id on top), so new nodes reuse them.
-    Runs at the start of the record after the deaths, once their events were read."""
-    top = t.state[S_FREE_NODES]
-    for n in range(t.state[S_NODES] - 1, -1, -1):
-        if t.node_i[n, STATUS] == DEAD:
-            t.node_i[n, STATUS] = FREE
-            t.free_nodes[top] = n
-            top += 1
-    t.state[S_FREE_NODES] = top
-    t.state[S_DEAD] = 0
-
-
-@njit
-def set_status(t, root: int, status: int) -> None:
-    """Give every node under ``root`` (not the alternates hanging there) ``status``."""
-    stack = np.empty(t.state[S_NODES] + 1, np.int64)
-    stack[0] = root
-    top = 1
-    while top > 0:
-        top -= 1
-        n = stack[top]
-        t.node_i[n, STATUS] = status
-        if t.node_i[n, KIND] == LEAF:
-            continue
-        start = t.node_i[n, CHILD_START]
-        for i in range(t.node_i[n, N_CHILDREN]):
-            c = t.child_table[start + i]
-            if c >= 0:
-                stack[top] = c
-                top += 1
-
-
 # ---------------------------------------------------------------- alternates
 
 @njit
@@ -270,30 +156,6 @@ def start_alternate(t, n: int, record: int) -> int:
     t.state[S_ALTS] += 1
     t.state[S_STARTS] += 1
     add_event(t.events_i, t.events_f, t.state, EV_START, n, record, a, 0.0, 0.0)
-    return a
-
-
-@njit
-def swap_in_alternate(t, n: int, record: int) -> int:
-    """Put ``n``'s alternate where ``n`` is; ``n``'s subtree dies. Returns the new node."""
-    a = t.node_i[n, ALT]
-    t.node_i[n, ALT] = -1
-    t.state[S_ALTS] -= 1
-    owner = t.node_i[n, ALT_OF]
-    if owner >= 0:                         # n is itself an alternate: a replaces it there
-        t.node_i[owner, ALT] = a
-        t.node_i[a, ALT_OF] = owner
-    else:
-        t.node_i[a, ALT_OF] = -1
-        if n == t.state[S_ROOT]:
-            t.state[S_ROOT] = a
-        else:
-            parent = t.node_i[n, PARENT]
-            t.child_table[t.node_i[parent, CHILD_START] + t.node_i[n, BRANCH]] = a
-    set_status(t, a, t.node_i[n, STATUS])
-    t.node_i[a, SWAPPED] = record
-    kill_subtree(t, n)
-    t.state[S_SWAPS] += 1
     return a
 
 

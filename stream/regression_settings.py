@@ -14,8 +14,8 @@ from __future__ import annotations
 import dataclasses
 import math
 
-from .errors import ConfigError
-from .settings import DETECTORS, require_choice, require_float, require_int
+from .settings import (SettingsRecord, check_drift_settings, require_choice, require_float,
+                       require_int)
 
 REGRESSION_CRITERIA = {"variance": 0, "deviation": 1}
 """Split merits by name -> kernel id. ``variance``: variance reduction (as river's
@@ -35,7 +35,7 @@ target count, mean and variance per bin (bounded memory; see
 
 
 @dataclasses.dataclass(frozen=True)
-class RegressionSettings:
+class RegressionSettings(SettingsRecord):
     """How the regression tree grows and predicts.
 
     Parameters
@@ -116,20 +116,4 @@ class RegressionSettings:
         require_float("memory budget (MB)", self.memory_mb, 0.0, math.inf)
         require_float("learning rate", self.learning_rate, 0.0, 2.0)
         require_float("selector decay", self.selector_decay, 0.0, 1.0, high_open=False)
-        # the same names, defaults and messages as stream.settings.TreeSettings
-        require_choice("drift detector", self.detector, DETECTORS)
-        require_float("ADWIN delta", self.adwin_delta, 0.0, 1.0)
-        require_float("Page-Hinkley threshold", self.page_hinkley_threshold, 0.0, math.inf)
-        require_int("swap window", self.swap_after, 1)
-        require_float("swap significance", self.swap_significance, 0.0, 1.0)
-
-    def to_dict(self) -> dict:
-        return dataclasses.asdict(self)
-
-    @classmethod
-    def from_dict(cls, data: dict) -> "RegressionSettings":
-        known = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(data) - known)
-        if unknown:
-            raise ConfigError(f"unknown setting {unknown[0]!r}; known: {', '.join(sorted(known))}")
-        return cls(**data)
+        check_drift_settings(self)

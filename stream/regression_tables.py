@@ -5,10 +5,10 @@ The written-down interface of the regressor's compiled core, built like the clas
 kernels update it in place and never allocate state; when a table is full a kernel
 returns to Python, which enlarges it (:func:`grow`) and calls again from the same record.
 
-The routing columns (``node_i`` columns 0-7, ``node_f`` columns THRESHOLD and WEIGHT)
-have the positions and meanings of the classifier's, so code that reads paths off the
-tables can serve either tree. The constants are defined here, not imported, so the two
-trees' tables can evolve apart.
+The node columns (all of ``node_i``; ``node_f`` columns THRESHOLD and WEIGHT), the
+counters of the same names, events and ``fmap`` have the positions and meanings of the
+classifier's: both come from :mod:`stream.node_layout`, so routing, alternates and the
+views of the main tree are written once for both trees.
 
 Nodes (capacity N; ids 0..S_NODES-1, dead ids are reused; the main root is S_ROOT)
     node_i  int64[N, 14] KIND (0 leaf, 1 numeric ``x <= threshold`` -> child 0,
@@ -73,8 +73,8 @@ Drift (one detector row per live node; see :mod:`stream.drift` and
                              the scale that normalises errors into [0, 1]
 
 Other
-    state   int64[32]  counters, indices S_* below (the same positions as the
-                       classifier's counters of the same names)
+    state   int64[32]  counters, indices S_* (:mod:`stream.node_layout`, shared with the
+                       classifier)
     cfg_i, cfg_f       settings, indices RC_* and RF_* below
     fmap    int64[F, 3]  per feature: FM_KIND (0 numeric, 1 category), FM_LOCAL (index
                          among features of that kind), FM_SEEN (1 + highest code learned)
@@ -86,55 +86,24 @@ import collections
 
 import numpy as np
 
-from .drift import ADWIN, ADWIN_COLS, ADWIN_LEVELS, PAGE_HINKLEY, PH_COLS, adwin_reset, \
-    page_hinkley_reset
 from .errors import ModelFileError
+from .node_layout import (  # noqa: F401 (the shared layout, re-exported)
+    ALT, ALT_OF, ALTERNATE, BRANCH, CHILD_START, CREATED, DEAD, DEPTH, DET, EQUALS, EV_AFTER,
+    EV_ALARM, EV_BEFORE, EV_DROP, EV_KIND, EV_NODE, EV_OTHER, EV_RECORD, EV_START, EV_SWAP,
+    EVENT_NAMES, FEATURE, FM_KIND, FM_LOCAL, FM_SEEN, FREE, KIND, LEAF, MAIN, MULTIWAY,
+    N_CHILDREN, NODE_I_COLS, NUMERIC, PARENT, S_ACTIVE, S_ALARMS, S_ALTS, S_CATS_SEEN,
+    S_CHILD_USED, S_CREATED, S_DEACTIVATED, S_DEAD, S_DROPS, S_EVENTS, S_FREE_DETS,
+    S_FREE_NODES, S_FREE_TOP, S_LEARNED, S_LEAVES, S_MAX_DEPTH, S_NODES, S_ROOT, S_SPLITS,
+    S_STARTS, S_SWAPS, SLOT, STATE_SIZE, STATUS, SWAPPED, detector_shapes, event_capacity,
+    feature_map, grow_node_rows, grow_slot_stack, node_arrays, plant_root, relay_children,
+    resized)
 from .regression_settings import (REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS,
                                   REGRESSION_OBSERVERS, RegressionSettings)
 from .settings import DETECTORS
 
-# node_i columns: the same positions and meanings as the classifier's
-KIND, FEATURE, CHILD_START, N_CHILDREN, PARENT, DEPTH, CREATED, SLOT, BRANCH, ALT, STATUS, \
-    DET, SWAPPED, ALT_OF = range(14)
-NODE_I_COLS = 14
-# node status, as in stream.tables
-MAIN, ALTERNATE, DEAD, FREE = 0, 1, 2, 3
-# events, as in stream.tables
-EV_KIND, EV_NODE, EV_RECORD, EV_OTHER = range(4)
-EV_BEFORE, EV_AFTER = range(2)
-EV_ALARM, EV_START, EV_SWAP, EV_DROP = 1, 2, 3, 4
-EVENT_NAMES = {EV_ALARM: "alarm", EV_START: "start", EV_SWAP: "swap", EV_DROP: "drop"}
 # err_scale entries
 ES_WEIGHT, ES_MEAN, ES_MAD_WEIGHT, ES_MAD = range(4)
 ERR_SCALE_SIZE = 4
-# node kinds, as in stream.tables
-LEAF, NUMERIC, MULTIWAY, EQUALS = 0, 1, 2, 3
-# fmap columns, as in stream.tables
-FM_KIND, FM_LOCAL, FM_SEEN = range(3)
-
-# state indices
-S_NODES = 0          # nodes in use
-S_FREE_TOP = 1       # free slots on the stack
-S_CHILD_USED = 2     # entries of child_table in use
-S_ACTIVE = 3         # active leaves
-S_LEARNED = 4        # records learned
-S_CATS_SEEN = 6      # 1 + highest category code learned so far (any categorical feature)
-S_SPLITS = 7         # splits made
-S_DEACTIVATED = 9    # leaves deactivated for the memory budget
-S_LEAVES = 10        # live leaves (main and alternate), active or not
-S_ROOT = 11          # root of the main tree
-S_FREE_NODES = 12    # recycled node ids on their stack
-S_FREE_DETS = 13     # free detector rows on their stack
-S_EVENTS = 14        # events waiting in the buffer
-S_ALTS = 15          # alternate subtrees growing
-S_ALARMS = 16        # detector alarms
-S_STARTS = 17        # alternates started
-S_SWAPS = 18         # alternates swapped in
-S_DROPS = 19         # alternates dropped
-S_MAX_DEPTH = 20     # deepest node ever created (a bound for path buffers)
-S_DEAD = 21          # dead nodes not yet recycled
-S_CREATED = 22       # nodes ever created (a change counter)
-STATE_SIZE = 32
 
 # node_f columns (THRESHOLD and WEIGHT as in stream.tables)
 THRESHOLD, WEIGHT, LAST_ATTEMPT, Y_N, Y_MEAN, Y_M2, ERR_MEAN, ERR_LINEAR, MERIT, SCORED, \
@@ -216,73 +185,28 @@ def _slot_shapes(slots: int, n_numeric: int, n_cat: int, cats: int, bins: int,
             "c_stats": (slots, n_cat, cats, 3)}
 
 
-def _detector_shapes(detector: int, rows: int, buckets: int) -> dict:
-    adwin = rows if detector == ADWIN else 0
-    ph = rows if detector == PAGE_HINKLEY else 0
-    return {"adwin_buckets": (adwin, ADWIN_LEVELS, buckets + 1, 2),
-            "adwin_counts": (adwin, ADWIN_LEVELS), "adwin_state": (adwin, ADWIN_COLS),
-            "ph_state": (ph, PH_COLS)}
-
-
-def _event_capacity(nodes: int) -> int:
-    return 4 * nodes + 64
-
-
 def allocate(settings: RegressionSettings, feature_kinds: list[str], cats: int = 4,
              nodes: int = 64, slots: int = 32) -> RegressorTables:
     """Empty tables holding a single active root leaf (node 0) with, when drift
     detection is on, a fresh detector."""
-    fmap = np.zeros((len(feature_kinds), 3), np.int64)
-    counters = [0, 0]
-    for f, name in enumerate(feature_kinds):
-        kind = 0 if name == "numeric" else 1
-        fmap[f, FM_KIND] = kind
-        fmap[f, FM_LOCAL] = counters[kind]
-        counters[kind] += 1
+    fmap, n_numeric, n_cat = feature_map(feature_kinds)
     cfg_i, cfg_f = config_arrays(settings)
-    shapes = _slot_shapes(slots, counters[0], counters[1], cats, settings.bins,
-                          int(cfg_i[RC_BUFFER]))
-    shapes.update(_detector_shapes(int(cfg_i[RC_DETECTOR]), nodes,
-                                   int(cfg_i[RC_ADWIN_BUCKETS])))
+    shapes = _slot_shapes(slots, n_numeric, n_cat, cats, settings.bins, int(cfg_i[RC_BUFFER]))
+    shapes.update(detector_shapes(int(cfg_i[RC_DETECTOR]), nodes,
+                                  int(cfg_i[RC_ADWIN_BUCKETS])))
     integer = ("q_meta", "adwin_counts")
     arrays = {name: np.zeros(shape, np.int64 if name in integer else np.float64)
               for name, shape in shapes.items()}
+    arrays.update(node_arrays(nodes, NODE_F_COLS))
     arrays.update(
-        node_i=np.zeros((nodes, NODE_I_COLS), np.int64),
-        node_f=np.zeros((nodes, NODE_F_COLS), np.float64),
-        lin=np.zeros((nodes, counters[0] + 1), np.float64),
-        lin_x=np.zeros((nodes, counters[0], 3), np.float64),
-        child_table=np.full(max(4 * nodes, 16), -1, np.int64),
-        scale=np.zeros((counters[0] + 1, SCALE_COLS), np.float64),
+        lin=np.zeros((nodes, n_numeric + 1), np.float64),
+        lin_x=np.zeros((nodes, n_numeric, 3), np.float64),
+        scale=np.zeros((n_numeric + 1, SCALE_COLS), np.float64),
         free_slots=np.arange(slots - 1, -1, -1, dtype=np.int64),
-        free_dets=np.arange(nodes - 1, -1, -1, dtype=np.int64),
-        free_nodes=np.zeros(nodes, np.int64),
-        events_i=np.zeros((_event_capacity(nodes), 4), np.int64),
-        events_f=np.zeros((_event_capacity(nodes), 2), np.float64),
-        err_scale=np.zeros(ERR_SCALE_SIZE, np.float64),
-        state=np.zeros(STATE_SIZE, np.int64), cfg_i=cfg_i, cfg_f=cfg_f, fmap=fmap)
+        err_scale=np.zeros(ERR_SCALE_SIZE, np.float64), cfg_i=cfg_i, cfg_f=cfg_f, fmap=fmap)
     t = RegressorTables(**arrays)
-    t.state[S_NODES] = 1
-    t.state[S_LEAVES] = 1
-    t.state[S_ROOT] = 0
-    t.state[S_FREE_DETS] = nodes
+    plant_root(t, with_detector=t.cfg_i[RC_DETECTOR] != DETECTORS["off"])
     t.state[S_CREATED] = 1
-    t.node_i[0, FEATURE] = -1
-    t.node_i[0, PARENT] = -1
-    t.node_i[0, ALT] = -1
-    t.node_i[0, SWAPPED] = -1
-    t.node_i[0, DET] = -1
-    t.node_i[0, ALT_OF] = -1
-    if t.cfg_i[RC_DETECTOR] != DETECTORS["off"]:
-        t.state[S_FREE_DETS] = nodes - 1
-        t.node_i[0, DET] = t.free_dets[nodes - 1]
-        if t.adwin_state.shape[0]:
-            adwin_reset(t.adwin_buckets, t.adwin_counts, t.adwin_state, t.node_i[0, DET])
-        if t.ph_state.shape[0]:
-            page_hinkley_reset(t.ph_state, t.node_i[0, DET])
-    t.state[S_FREE_TOP] = slots - 1
-    t.state[S_ACTIVE] = 1
-    t.node_i[0, SLOT] = t.free_slots[slots - 1]
     return t
 
 
@@ -290,23 +214,6 @@ def capacities(t: RegressorTables) -> dict:
     """Current capacities: nodes, slots, category codes, child-table entries."""
     return {"nodes": t.node_i.shape[0], "slots": t.free_slots.shape[0],
             "cats": t.c_stats.shape[2], "children": t.child_table.shape[0]}
-
-
-def _resized(arr: np.ndarray, shape: tuple, fill=0) -> np.ndarray:
-    out = np.full(shape, fill, arr.dtype)
-    common = tuple(slice(0, min(a, b)) for a, b in zip(arr.shape, shape))
-    out[common] = arr[common]
-    return out
-
-
-def _grown_stack(stack: np.ndarray, top: int, old: int, new: int) -> np.ndarray:
-    """A free-id stack of capacity ``new``: the new ids go under the existing ones, so
-    the order in which ids are reused stays the same."""
-    extra = np.arange(new - 1, old - 1, -1, dtype=np.int64)
-    out = np.empty(new, np.int64)
-    out[:len(extra)] = extra
-    out[len(extra):len(extra) + top] = stack[:top]
-    return out
 
 
 def grow(t: RegressorTables, nodes: int = 0, slots: int = 0, cats: int = 0,
@@ -324,58 +231,26 @@ def grow(t: RegressorTables, nodes: int = 0, slots: int = 0, cats: int = 0,
     arrays["state"] = t.state.copy()
     state = arrays["state"]
     if new["nodes"] != cap["nodes"]:
-        arrays["node_i"] = _resized(t.node_i, (new["nodes"], NODE_I_COLS))
-        arrays["node_f"] = _resized(t.node_f, (new["nodes"], NODE_F_COLS))
-        arrays["lin"] = _resized(t.lin, (new["nodes"], t.lin.shape[1]))
-        arrays["lin_x"] = _resized(t.lin_x, (new["nodes"],) + t.lin_x.shape[1:])
-        arrays["free_nodes"] = _resized(t.free_nodes, (new["nodes"],))
-        for name, shape in _detector_shapes(int(t.cfg_i[RC_DETECTOR]), new["nodes"],
-                                            int(t.cfg_i[RC_ADWIN_BUCKETS])).items():
-            arrays[name] = _resized(arrays[name], shape)
-        arrays["free_dets"] = _grown_stack(t.free_dets, int(t.state[S_FREE_DETS]),
-                                           cap["nodes"], new["nodes"])
-        state[S_FREE_DETS] += new["nodes"] - cap["nodes"]
-        events = _event_capacity(new["nodes"])
-        arrays["events_i"] = _resized(t.events_i, (events, 4))
-        arrays["events_f"] = _resized(t.events_f, (events, 2))
+        grow_node_rows(arrays, t, new["nodes"], int(t.cfg_i[RC_DETECTOR]),
+                       int(t.cfg_i[RC_ADWIN_BUCKETS]))
+        arrays["lin"] = resized(t.lin, (new["nodes"], t.lin.shape[1]))
+        arrays["lin_x"] = resized(t.lin_x, (new["nodes"],) + t.lin_x.shape[1:])
     if new["slots"] != cap["slots"] or new["cats"] != cap["cats"]:
         for name in SLOT_TABLES:
             shape = list(arrays[name].shape)
             shape[0] = new["slots"]
             if name == "c_stats":
                 shape[2] = new["cats"]
-            arrays[name] = _resized(arrays[name], tuple(shape))
+            arrays[name] = resized(arrays[name], tuple(shape))
     if new["slots"] != cap["slots"]:
-        arrays["free_slots"] = _grown_stack(t.free_slots, int(t.state[S_FREE_TOP]),
-                                            cap["slots"], new["slots"])
-        state[S_FREE_TOP] += new["slots"] - cap["slots"]
+        grow_slot_stack(arrays, t, new["slots"])
     if new["cats"] != cap["cats"]:
-        arrays["child_table"], arrays["node_i"], state[S_CHILD_USED] = _relay_children(
+        arrays["child_table"], arrays["node_i"], state[S_CHILD_USED] = relay_children(
             arrays["child_table"], arrays["node_i"], int(t.state[S_NODES]), new["cats"],
             new["children"])
     elif new["children"] != cap["children"]:
-        arrays["child_table"] = _resized(t.child_table, (new["children"],), -1)
+        arrays["child_table"] = resized(t.child_table, (new["children"],), -1)
     return RegressorTables(**arrays)
-
-
-def _relay_children(table: np.ndarray, node_i: np.ndarray, n_nodes: int, cats: int,
-                    capacity: int):
-    """A fresh child table holding the blocks of live branches only (dead and recycled
-    nodes' blocks are dropped), multiway blocks widened to ``cats`` entries."""
-    node_i = node_i.copy()
-    kinds = node_i[:n_nodes, KIND]
-    live = (kinds != LEAF) & (node_i[:n_nodes, STATUS] < DEAD)
-    need = int(np.where(live, np.where(kinds == MULTIWAY, cats, 2), 0).sum())
-    out = np.full(max(capacity, 2 * need + 16), -1, np.int64)
-    used = 0
-    for n in np.flatnonzero(live):
-        width = cats if kinds[n] == MULTIWAY else 2
-        start, count = node_i[n, CHILD_START], node_i[n, N_CHILDREN]
-        out[used:used + count] = table[start:start + count]
-        node_i[n, CHILD_START] = used
-        node_i[n, N_CHILDREN] = width
-        used += width
-    return out, node_i, used
 
 
 def check_tables(t: RegressorTables, settings: RegressionSettings,
@@ -399,11 +274,11 @@ def check_tables(t: RegressorTables, settings: RegressionSettings,
     expected = {"node_i": (nodes, NODE_I_COLS), "node_f": (nodes, NODE_F_COLS),
                 "lin": (nodes,) + fresh.lin.shape[1:], "lin_x": (nodes,) + fresh.lin_x.shape[1:],
                 "scale": fresh.scale.shape, "free_slots": (slots,), "free_dets": (nodes,),
-                "free_nodes": (nodes,), "events_i": (_event_capacity(nodes), 4),
-                "events_f": (_event_capacity(nodes), 2), "err_scale": fresh.err_scale.shape}
+                "free_nodes": (nodes,), "events_i": (event_capacity(nodes), 4),
+                "events_f": (event_capacity(nodes), 2), "err_scale": fresh.err_scale.shape}
     expected.update(_slot_shapes(slots, fresh.q_stats.shape[1], fresh.c_stats.shape[1], cats,
                                  settings.bins, int(fresh.cfg_i[RC_BUFFER])))
-    expected.update(_detector_shapes(int(fresh.cfg_i[RC_DETECTOR]), nodes,
+    expected.update(detector_shapes(int(fresh.cfg_i[RC_DETECTOR]), nodes,
                                      int(fresh.cfg_i[RC_ADWIN_BUCKETS])))
     for name, shape in expected.items():
         if getattr(t, name).shape != shape:

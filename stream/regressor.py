@@ -24,10 +24,9 @@ from .regression_tables import (EVENT_NAMES, EV_AFTER, EV_BEFORE, EV_KIND, EV_NO
                                 S_DEACTIVATED, S_DROPS, S_EVENTS, S_FREE_NODES, S_LEAVES,
                                 S_NODES, S_SPLITS, S_STARTS, S_SWAPS, RegressorTables,
                                 allocate, capacities, check_tables, grow)
-from .regressor_kernel import (has_room, leaf_cap, learn_batch, predict_batch, tree_shape,
-                               worst_case)
+from .regressor_kernel import has_room, leaf_cap, learn_batch, predict_batch, worst_case
 from .rules import node_conditions
-from .tree_views import MainTreeViews
+from .tree_views import MainTreeViews, check_features
 
 
 @dataclasses.dataclass
@@ -54,18 +53,9 @@ class TreeRegressor(MainTreeViews):
         defaults if omitted.
     """
 
-    _shape = staticmethod(tree_shape)
-
     def __init__(self, feature_names: list[str], feature_kinds: list[str],
                  settings: RegressionSettings | None = None) -> None:
-        if len(feature_names) != len(feature_kinds):
-            raise ConfigError("feature names and kinds must have the same length, got "
-                              f"{len(feature_names)} and {len(feature_kinds)}")
-        bad = [k for k in feature_kinds if k not in ("numeric", "category")]
-        if bad:
-            raise ConfigError(f"feature kind must be 'numeric' or 'category', got {bad[0]!r}")
-        if not feature_names:
-            raise ConfigError("a tree needs at least one feature, got none")
+        check_features(feature_names, feature_kinds)
         self.settings = settings or RegressionSettings()
         self.feature_names = list(feature_names)
         self.feature_kinds = list(feature_kinds)

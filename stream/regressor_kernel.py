@@ -62,8 +62,9 @@ from .drift import A_TOTAL, A_WIDTH, ADWIN, NO_DETECTOR, adwin_update, page_hink
 from .jit import njit
 from .regression_criteria import split_confident
 from .regression_drift import error_scale_update, error_unit, normalised_error
-from .regression_nodes import (activate, deactivate, enforce_leaf_cap, fresh_detector,
-                               leaf_cap, new_leaf, react, recycle_dead)
+from .node_kernel import deactivate, next_node, recycle_dead
+from .regression_nodes import (activate, enforce_leaf_cap, fresh_detector, leaf_cap, new_leaf,
+                               react)
 from .regression_observers import category_best, observe, quantile_best
 from .regression_tables import (ABS_ERROR, ALT, CHILD_START, DEPTH, DET, EQUALS, ERR_LINEAR,
                                 ERR_MEAN, ERR_N, ERR_SQ, ERR_SUM, FEATURE, FM_KIND, FM_LOCAL,
@@ -93,38 +94,6 @@ whose last hundred records erred by 0.1 on average about 50."""
 
 
 # ---------------------------------------------------------------- routing
-
-@njit
-def heaviest_child(node_i, node_f, child_table, n: int) -> int:
-    """The child that has seen the most weight (ties: the first); missing values go there."""
-    best = -1
-    best_weight = -1.0
-    start = node_i[n, CHILD_START]
-    for i in range(node_i[n, N_CHILDREN]):
-        c = child_table[start + i]
-        if c >= 0 and node_f[c, WEIGHT] > best_weight:
-            best = c
-            best_weight = node_f[c, WEIGHT]
-    return best
-
-
-@njit
-def next_node(node_i, node_f, child_table, n: int, x) -> int:
-    """The child of branch ``n`` for record ``x``, or -1 for a category with no branch yet."""
-    v = x[node_i[n, FEATURE]]
-    if math.isnan(v):
-        return heaviest_child(node_i, node_f, child_table, n)
-    start = node_i[n, CHILD_START]
-    kind = node_i[n, KIND]
-    if kind == NUMERIC:
-        return child_table[start] if v <= node_f[n, THRESHOLD] else child_table[start + 1]
-    if kind == EQUALS:
-        return child_table[start] if v == node_f[n, THRESHOLD] else child_table[start + 1]
-    code = int(v)
-    if code < node_i[n, N_CHILDREN]:
-        return child_table[start + code]
-    return -1
-
 
 @njit
 def route(node_i, node_f, child_table, X, i: int, root: int, count: bool, path):
@@ -817,32 +786,3 @@ def predict_batch(t, X, pred, leaf) -> None:
     scratch = np.empty(t.node_i.shape[0] + 1, np.int64)
     for i in range(X.shape[0]):
         pred[i], leaf[i] = predict_one(t, X, i, path, scratch, z, cols)
-
-
-@njit
-def tree_shape(t):
-    """(nodes, leaves, depth) of the main tree; depth counts edges from its root."""
-    stack = np.empty(t.state[S_NODES] + 1, np.int64)
-    root = t.state[S_ROOT]
-    stack[0] = root
-    top = 1
-    nodes = 0
-    leaves = 0
-    deepest = 0
-    while top > 0:
-        top -= 1
-        n = stack[top]
-        nodes += 1
-        d = t.node_i[n, DEPTH] - t.node_i[root, DEPTH]
-        if d > deepest:
-            deepest = d
-        if t.node_i[n, KIND] == LEAF:
-            leaves += 1
-            continue
-        start = t.node_i[n, CHILD_START]
-        for k in range(t.node_i[n, N_CHILDREN]):
-            c = t.child_table[start + k]
-            if c >= 0:
-                stack[top] = c
-                top += 1
-    return nodes, leaves, deepest

@@ -67,8 +67,32 @@ def require_choice(what: str, value: Any, choices: dict) -> str:
     return value
 
 
+def check_drift_settings(settings: Any) -> None:
+    """Check the drift settings both trees share (names, defaults and messages alike)."""
+    require_choice("drift detector", settings.detector, DETECTORS)
+    require_float("ADWIN delta", settings.adwin_delta, 0.0, 1.0)
+    require_float("Page-Hinkley threshold", settings.page_hinkley_threshold, 0.0, math.inf)
+    require_int("swap window", settings.swap_after, 1)
+    require_float("swap significance", settings.swap_significance, 0.0, 1.0)
+
+
+class SettingsRecord:
+    """``to_dict`` / ``from_dict`` for a settings dataclass; unknown names are refused."""
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict):
+        known = {f.name for f in dataclasses.fields(cls)}
+        unknown = sorted(set(data) - known)
+        if unknown:
+            raise ConfigError(f"unknown setting {unknown[0]!r}; known: {', '.join(sorted(known))}")
+        return cls(**data)
+
+
 @dataclasses.dataclass(frozen=True)
-class TreeSettings:
+class TreeSettings(SettingsRecord):
     """How the tree grows and predicts.
 
     Parameters
@@ -157,19 +181,4 @@ class TreeSettings:
             require_int("max depth", self.max_depth, 1)
         require_float("memory budget (MB)", self.memory_mb, 0.0, math.inf)
         require_int("naive Bayes threshold", self.naive_bayes_after, 0)
-        require_choice("drift detector", self.detector, DETECTORS)
-        require_float("ADWIN delta", self.adwin_delta, 0.0, 1.0)
-        require_float("Page-Hinkley threshold", self.page_hinkley_threshold, 0.0, math.inf)
-        require_int("swap window", self.swap_after, 1)
-        require_float("swap significance", self.swap_significance, 0.0, 1.0)
-
-    def to_dict(self) -> dict:
-        return dataclasses.asdict(self)
-
-    @classmethod
-    def from_dict(cls, data: dict) -> "TreeSettings":
-        known = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(data) - known)
-        if unknown:
-            raise ConfigError(f"unknown setting {unknown[0]!r}; known: {', '.join(sorted(known))}")
-        return cls(**data)
+        check_drift_settings(self)

@@ -1,24 +1,35 @@
 """Read-only views of a tree's main part, shared by the classifier and the regressor.
 
-Both learners keep their nodes in tables with the same node layout (``tables.py`` and
-``regression_tables.py`` agree on the columns used here); :class:`MainTreeViews` reads
-them. A subclass holds ``tables_`` and sets ``_shape`` to its compiled ``tree_shape``.
+Both learners keep their nodes in tables with the node layout of
+:mod:`stream.node_layout`; :class:`MainTreeViews` reads them. A subclass holds ``tables_``.
 """
 
 from __future__ import annotations
 
-from typing import Callable
-
 import numpy as np
 
-from .tables import CHILD_START, KIND, LEAF, N_CHILDREN, S_ACTIVE, S_LEARNED, S_ROOT
+from .errors import ConfigError
+from .node_kernel import tree_shape
+from .node_layout import CHILD_START, KIND, LEAF, N_CHILDREN, S_ACTIVE, S_LEARNED, S_ROOT
+
+
+def check_features(feature_names: list[str], feature_kinds: list[str]) -> None:
+    """:class:`ConfigError` unless there is at least one feature and each has a kind,
+    ``"numeric"`` or ``"category"``."""
+    if len(feature_names) != len(feature_kinds):
+        raise ConfigError("feature names and kinds must have the same length, got "
+                          f"{len(feature_names)} and {len(feature_kinds)}")
+    bad = [k for k in feature_kinds if k not in ("numeric", "category")]
+    if bad:
+        raise ConfigError(f"feature kind must be 'numeric' or 'category', got {bad[0]!r}")
+    if not feature_names:
+        raise ConfigError("a tree needs at least one feature, got none")
 
 
 class MainTreeViews:
     """Root, nodes, size and depth of the main tree (alternates not included)."""
 
     tables_: tuple
-    _shape: Callable
 
     @property
     def root(self) -> int:
@@ -41,12 +52,12 @@ class MainTreeViews:
     @property
     def n_nodes(self) -> int:
         """Nodes of the main tree."""
-        return int(self._shape(self.tables_)[0])
+        return int(tree_shape(self.tables_)[0])
 
     @property
     def n_leaves(self) -> int:
         """Leaves of the main tree."""
-        return int(self._shape(self.tables_)[1])
+        return int(tree_shape(self.tables_)[1])
 
     @property
     def n_active_leaves(self) -> int:
@@ -56,7 +67,7 @@ class MainTreeViews:
     @property
     def depth(self) -> int:
         """Edges on the longest root-to-leaf path of the main tree (0 for a lone root)."""
-        return int(self._shape(self.tables_)[2])
+        return int(tree_shape(self.tables_)[2])
 
     @property
     def records_learned(self) -> int:

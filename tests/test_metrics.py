@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import io
 import json
-import math
 import warnings
 
 import numpy as np

@@ -628,13 +628,3 @@ def test_friedman_arrays_match_river_records():
     assert s.names[:2] == ["x0", "x1"] and s.X.shape == (5, 10)
     assert s.X[0, 0] == pytest.approx(0.6394, abs=1e-4) and s.y[0] == pytest.approx(7.6612,
                                                                                       abs=1e-4)
-
-
-def test_both_table_layouts_agree_on_the_columns_the_shared_tree_views_read():
-    """stream.tree_views reads classifier and regressor tables with one set of indices."""
-    import stream.regression_tables as regression
-    import stream.tables as classification
-
-    for name in ("S_ROOT", "S_ACTIVE", "S_LEARNED", "KIND", "LEAF", "CHILD_START",
-                 "N_CHILDREN"):
-        assert getattr(regression, name) == getattr(classification, name), name
