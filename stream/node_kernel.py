@@ -1,6 +1,6 @@
 """Compiled operations on the node layout both trees share (:mod:`stream.node_layout`):
-routing a record through a branch, giving back a leaf's observer slot, the death,
-status and recycling of subtrees, and the event buffer.
+routing a record through a branch, the birth of leaves, giving back an observer slot,
+walks, death, swap and recycling of subtrees, and the event buffer.
 
 Contents
 --------
@@ -9,10 +9,11 @@ heaviest_child / next_node
 place_leaf / take_detector_row / deactivate
     A new leaf's id and node columns; its detector row; a leaf gives its observer slot
     back (its own statistics and model stay).
-kill_subtree / recycle_dead / set_status / swap_in_alternate
-    A replaced or dropped subtree dies at once (its slots and detectors are freed); its
-    node ids are recycled at the start of the next record, after Python has read the
-    events that name them. An alternate swapped in takes its node's place.
+push_children / kill_subtree / recycle_dead / set_status / swap_in_alternate
+    Walks of a subtree. A replaced or dropped subtree dies at once (its slots and
+    detectors are freed); its node ids are recycled at the start of the next record,
+    after Python has read the events that name them. An alternate swapped in takes its
+    node's place.
 tree_shape
     Nodes, leaves and depth of the main tree.
 add_event
@@ -127,7 +128,19 @@ def deactivate(t, n: int) -> None:
     t.state[S_ACTIVE] -= 1
 
 
-# ---------------------------------------------------------------- death and recycling
+# ---------------------------------------------------------------- walks, death and recycling
+
+@njit
+def push_children(node_i, child_table, n: int, stack, top: int) -> int:
+    """Push branch ``n``'s children on ``stack`` (above ``top``); returns the new top."""
+    start = node_i[n, CHILD_START]
+    for i in range(node_i[n, N_CHILDREN]):
+        c = child_table[start + i]
+        if c >= 0:
+            stack[top] = c
+            top += 1
+    return top
+
 
 @njit
 def kill_subtree(t, root: int) -> None:
@@ -158,12 +171,7 @@ def kill_subtree(t, root: int) -> None:
             deactivate(t, n)
             t.state[S_LEAVES] -= 1
             continue
-        start = t.node_i[n, CHILD_START]
-        for i in range(t.node_i[n, N_CHILDREN]):
-            c = t.child_table[start + i]
-            if c >= 0:
-                stack[top] = c
-                top += 1
+        top = push_children(t.node_i, t.child_table, n, stack, top)
 
 
 @njit
@@ -192,12 +200,7 @@ def set_status(t, root: int, status: int) -> None:
         t.node_i[n, STATUS] = status
         if t.node_i[n, KIND] == LEAF:
             continue
-        start = t.node_i[n, CHILD_START]
-        for i in range(t.node_i[n, N_CHILDREN]):
-            c = t.child_table[start + i]
-            if c >= 0:
-                stack[top] = c
-                top += 1
+        top = push_children(t.node_i, t.child_table, n, stack, top)
 
 
 @njit
@@ -244,12 +247,7 @@ def tree_shape(t):
         if t.node_i[n, KIND] == LEAF:
             leaves += 1
             continue
-        start = t.node_i[n, CHILD_START]
-        for i in range(t.node_i[n, N_CHILDREN]):
-            c = t.child_table[start + i]
-            if c >= 0:
-                stack[top] = c
-                top += 1
+        top = push_children(t.node_i, t.child_table, n, stack, top)
     return nodes, leaves, deepest
 
 
