@@ -19,30 +19,9 @@ import numpy as np
 from .classifier_kernel import has_room, leaf_cap, learn_batch, predict_batch, worst_case
 from .errors import ConfigError
 from .settings import TreeSettings
-from .tables import (EVENT_NAMES, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER,
-                     EV_RECORD, S_ALARMS, S_ALTS, S_CHILD_USED, S_CLASSES_SEEN,
-                     S_DEACTIVATED, S_DROPS, S_EVENTS, S_FREE_NODES, S_LEAVES, S_NODES,
-                     S_PRUNED, S_SPLITS, S_STARTS, S_SWAPS, ClassifierTables, allocate,
-                     capacities, grow)
-from .tree_views import MainTreeViews, check_features
-
-
-@dataclasses.dataclass(frozen=True)
-class DriftEvent:
-    """Something a drift detector did: ``kind`` is alarm, start (an alternate subtree
-    began growing beside ``node``), swap (the alternate ``other`` replaced ``node``'s
-    subtree) or drop (the alternate ``other`` was given up). ``record`` counts the
-    records learned before the event; ``before``/``after`` are error rates (alarm: the
-    node's rate before, and the detector's recent rate; swap/drop: the branch's and the
-    alternate's)."""
-
-    kind: str
-    node: int
-    record: int
-    other: int
-    before: float
-    after: float
-    path: tuple | None = None
+from .tables import S_CLASSES_SEEN, S_PRUNED, ClassifierTables, allocate, capacities, grow
+from .tree_upkeep import DriftEvent, TableOps, TableUpkeep
+from .tree_views import check_features
 
 
 @dataclasses.dataclass
@@ -55,7 +34,7 @@ class Scored:
     leaf: np.ndarray
 
 
-class TreeClassifier(MainTreeViews):
+class TreeClassifier(TableUpkeep):
     """An incremental Hoeffding tree over numeric and categorical features.
 
     Parameters
@@ -69,6 +48,8 @@ class TreeClassifier(MainTreeViews):
         How the tree grows; :class:`stream.settings.TreeSettings` defaults if omitted.
     """
 
+    _ops = TableOps(capacities, grow, has_room, worst_case, leaf_cap)
+
     def __init__(self, feature_names: list[str], feature_kinds: list[str],
                  settings: TreeSettings | None = None) -> None:
         check_features(feature_names, feature_kinds)
@@ -77,6 +58,7 @@ class TreeClassifier(MainTreeViews):
         self.feature_kinds = list(feature_kinds)
         self.classes_: list[str] = []
         self.events_: list[DriftEvent] = []
+        self._categories: dict[str, list[str]] = {}
         self.tables_: ClassifierTables = allocate(self.settings, self.feature_kinds)
         self._category_columns = np.array(
             [j for j, k in enumerate(self.feature_kinds) if k == "category"], np.int64)
@@ -106,35 +88,10 @@ class TreeClassifier(MainTreeViews):
         n = X.shape[0]
         scored = Scored(np.empty(n, np.int32), np.empty(n), np.empty(n, np.int32))
         rank = self._rank()
-        done = 0
-        while True:
-            done = learn_batch(self.tables_, X, y, done, rank, scored.pred,
-                               scored.confidence, scored.leaf)
-            self._collect_events()
-            if done >= n:
-                return scored
-            if not has_room(self.tables_):
-                self._make_room()
-
-    def take_events(self) -> list[DriftEvent]:
-        """Drift events since the last call, oldest first, each with the node's path as
-        conditions, read when the event was collected (node ids are recycled later)."""
-        events, self.events_ = self.events_, []
-        return events
-
-    def _collect_events(self) -> None:
-        t = self.tables_
-        count = int(t.state[S_EVENTS])
-        from .rules import node_conditions
-
-        for e in range(count):
-            node = int(t.events_i[e, EV_NODE])
-            self.events_.append(DriftEvent(
-                EVENT_NAMES[int(t.events_i[e, EV_KIND])], node,
-                int(t.events_i[e, EV_RECORD]), int(t.events_i[e, EV_OTHER]),
-                float(t.events_f[e, EV_BEFORE]), float(t.events_f[e, EV_AFTER]),
-                node_conditions(self, node, getattr(self, "_categories", {}))))
-        t.state[S_EVENTS] = 0
+        self._learn_all(n, lambda start: learn_batch(self.tables_, X, y, start, rank,
+                                                     scored.pred, scored.confidence,
+                                                     scored.leaf))
+        return scored
 
     def predict(self, X: np.ndarray) -> Scored:
         """Score rows of ``X`` without learning."""
@@ -155,36 +112,6 @@ class TreeClassifier(MainTreeViews):
         capacity = capacities(self.tables_)["classes"]
         if len(classes) > capacity:
             self.tables_ = grow(self.tables_, classes=max(len(classes), 2 * capacity))
-
-    def _fit_categories(self, X: np.ndarray) -> None:
-        if not self._category_columns.size or not X.shape[0]:
-            return
-        codes = X[:, self._category_columns]
-        if np.isnan(codes).all():
-            return
-        highest = int(np.nanmax(codes))
-        capacity = capacities(self.tables_)["cats"]
-        if highest >= capacity:
-            self.tables_ = grow(self.tables_, cats=max(highest + 1, 2 * capacity))
-
-    def _make_room(self) -> None:
-        """Enlarge whatever table :func:`has_room` found short (doubling, at least)."""
-        t = self.tables_
-        cap = capacities(t)
-        nodes, events, children, _ = (int(v) for v in worst_case(t))
-        nodes_free = cap["nodes"] - int(t.state[S_NODES]) + int(t.state[S_FREE_NODES])
-        need_nodes = nodes_free <= nodes or \
-            t.events_i.shape[0] - int(t.state[S_EVENTS]) <= events
-        need_slots = min(int(t.state[S_LEAVES]), leaf_cap(t)) + nodes
-        self.tables_ = grow(
-            t,
-            nodes=2 * cap["nodes"] + nodes + events if need_nodes else 0,
-            slots=max(2 * cap["slots"], need_slots) if cap["slots"] < need_slots else 0,
-            children=(2 * cap["children"] + children
-                      if cap["children"] - t.state[S_CHILD_USED] <= children else 0),
-        )
-        if not has_room(self.tables_):  # pragma: no cover - a bug, not a data condition
-            raise RuntimeError("tables did not grow enough")
 
     def _rank(self) -> np.ndarray:
         rank = np.zeros(capacities(self.tables_)["classes"], np.int32)
@@ -215,10 +142,7 @@ class TreeClassifier(MainTreeViews):
 
     # ------------------------------------------------------------------ introspection
     def counters(self) -> dict:
-        """Growth counters: splits, prepruned attempts, deactivated leaves, classes seen."""
+        """The shared counters plus prepruned split attempts and classes seen."""
         s = self.tables_.state
-        return {"splits": int(s[S_SPLITS]), "prepruned": int(s[S_PRUNED]),
-                "deactivated": int(s[S_DEACTIVATED]), "classes_seen": int(s[S_CLASSES_SEEN]),
-                "drift_alarms": int(s[S_ALARMS]), "alternates_started": int(s[S_STARTS]),
-                "alternates_swapped": int(s[S_SWAPS]), "alternates_dropped": int(s[S_DROPS]),
-                "alternates_growing": int(s[S_ALTS])}
+        return {**super().counters(), "prepruned": int(s[S_PRUNED]),
+                "classes_seen": int(s[S_CLASSES_SEEN])}

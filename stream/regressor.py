@@ -16,17 +16,12 @@ import dataclasses
 
 import numpy as np
 
-from .classifier import DriftEvent
 from .errors import ConfigError, ModelFileError
 from .regression_settings import RegressionSettings
-from .regression_tables import (EVENT_NAMES, EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE,
-                                EV_OTHER, EV_RECORD, S_ALARMS, S_ALTS, S_CHILD_USED,
-                                S_DEACTIVATED, S_DROPS, S_EVENTS, S_FREE_NODES, S_LEAVES,
-                                S_NODES, S_SPLITS, S_STARTS, S_SWAPS, RegressorTables,
-                                allocate, capacities, check_tables, grow)
+from .regression_tables import RegressorTables, allocate, capacities, check_tables, grow
 from .regressor_kernel import has_room, leaf_cap, learn_batch, predict_batch, worst_case
-from .rules import node_conditions
-from .tree_views import MainTreeViews, check_features
+from .tree_upkeep import DriftEvent, TableOps, TableUpkeep
+from .tree_views import check_features
 
 
 @dataclasses.dataclass
@@ -38,7 +33,7 @@ class ScoredValues:
     leaf: np.ndarray
 
 
-class TreeRegressor(MainTreeViews):
+class TreeRegressor(TableUpkeep):
     """An incremental Hoeffding regression tree over numeric and categorical features.
 
     Parameters
@@ -52,6 +47,8 @@ class TreeRegressor(MainTreeViews):
         How the tree grows; :class:`stream.regression_settings.RegressionSettings`
         defaults if omitted.
     """
+
+    _ops = TableOps(capacities, grow, has_room, worst_case, leaf_cap)
 
     def __init__(self, feature_names: list[str], feature_kinds: list[str],
                  settings: RegressionSettings | None = None) -> None:
@@ -85,36 +82,9 @@ class TreeRegressor(MainTreeViews):
         self._fit_categories(X)
         n = X.shape[0]
         scored = ScoredValues(np.empty(n), np.empty(n, np.int32))
-        done = 0
-        while True:
-            done = learn_batch(self.tables_, X, y, done, scored.pred, scored.leaf, plain)
-            self._collect_events()
-            if done >= n:
-                return scored
-            if not has_room(self.tables_):
-                self._make_room()
-
-    def take_events(self) -> list[DriftEvent]:
-        """Drift events since the last call, oldest first, as the classifier's: each with
-        the node's path as conditions, read when the event was collected (the ids of a
-        subtree swapped out or dropped are reused from the next record on, possibly
-        within the same :meth:`learn` call). ``before`` and ``after`` are mean normalised
-        absolute errors (:mod:`stream.regression_drift`)."""
-        events, self.events_ = self.events_, []
-        return events
-
-    def _collect_events(self) -> None:
-        # the kernel returns before it recycles the nodes of pending events: their paths
-        # can be read now, and only now
-        t = self.tables_
-        for e in range(int(t.state[S_EVENTS])):
-            node = int(t.events_i[e, EV_NODE])
-            self.events_.append(DriftEvent(
-                EVENT_NAMES[int(t.events_i[e, EV_KIND])], node,
-                int(t.events_i[e, EV_RECORD]), int(t.events_i[e, EV_OTHER]),
-                float(t.events_f[e, EV_BEFORE]), float(t.events_f[e, EV_AFTER]),
-                node_conditions(self, node, self._categories)))
-        t.state[S_EVENTS] = 0
+        self._learn_all(n, lambda start: learn_batch(self.tables_, X, y, start, scored.pred,
+                                                     scored.leaf, plain))
+        return scored
 
     def predict(self, X: np.ndarray) -> ScoredValues:
         """Score rows of ``X`` without learning."""
@@ -145,37 +115,6 @@ class TreeRegressor(MainTreeViews):
                                   f"{float(codes[row, col])!r} in field {name!r} at row {int(row)}")
         return X
 
-    # ------------------------------------------------------------------ capacity
-    def _fit_categories(self, X: np.ndarray) -> None:
-        if not self._category_columns.size or not X.shape[0]:
-            return
-        codes = X[:, self._category_columns]
-        if np.isnan(codes).all():
-            return
-        highest = int(np.nanmax(codes))
-        capacity = capacities(self.tables_)["cats"]
-        if highest >= capacity:
-            self.tables_ = grow(self.tables_, cats=max(highest + 1, 2 * capacity))
-
-    def _make_room(self) -> None:
-        """Enlarge whatever table :func:`has_room` found short (doubling, at least)."""
-        t = self.tables_
-        cap = capacities(t)
-        nodes, events, children = (int(v) for v in worst_case(t))
-        nodes_free = cap["nodes"] - int(t.state[S_NODES]) + int(t.state[S_FREE_NODES])
-        need_nodes = nodes_free <= nodes or \
-            t.events_i.shape[0] - int(t.state[S_EVENTS]) <= events
-        need_slots = min(int(t.state[S_LEAVES]), leaf_cap(t)) + nodes
-        self.tables_ = grow(
-            t,
-            nodes=2 * cap["nodes"] + nodes + events if need_nodes else 0,
-            slots=max(2 * cap["slots"], need_slots) if cap["slots"] < need_slots else 0,
-            children=(2 * cap["children"] + children
-                      if cap["children"] - t.state[S_CHILD_USED] <= children else 0),
-        )
-        if not has_room(self.tables_):  # pragma: no cover - a bug, not a data condition
-            raise RuntimeError("tables did not grow enough")
-
     # ------------------------------------------------------------------ state
     def state(self) -> tuple[dict, dict[str, np.ndarray]]:
         """Everything needed to resume: JSON-able meta and copies of the tables (no
@@ -199,15 +138,6 @@ class TreeRegressor(MainTreeViews):
                                     for f in RegressorTables._fields})
         model.tables_ = check_tables(tables, model.settings, model.feature_kinds)
         return model
-
-    # ------------------------------------------------------------------ introspection
-    def counters(self) -> dict:
-        """Growth and drift counters (the drift keys are the classifier's)."""
-        s = self.tables_.state
-        return {"splits": int(s[S_SPLITS]), "deactivated": int(s[S_DEACTIVATED]),
-                "drift_alarms": int(s[S_ALARMS]), "alternates_started": int(s[S_STARTS]),
-                "alternates_swapped": int(s[S_SWAPS]), "alternates_dropped": int(s[S_DROPS]),
-                "alternates_growing": int(s[S_ALTS])}
 
 
 def warm_up() -> None:
