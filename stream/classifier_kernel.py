@@ -11,6 +11,8 @@ the tables (:mod:`stream.tables`) and calls again from that index.
 
 Functions on the per-record path take the individual tables they touch; rare operations
 (splits, activation, the memory budget) take the whole :class:`ClassifierTables` ``t``.
+What the regression tree does alike with its nodes (routing through a branch, the birth
+and death of nodes, swapping alternates in) is in :mod:`stream.node_kernel`.
 """
 
 from __future__ import annotations
