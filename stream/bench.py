@@ -50,6 +50,7 @@ from typing import Callable, Iterable
 import click
 import numpy as np
 
+from .child_env import same_code_env
 from .errors import SapwoodError
 
 MB = 1e6
@@ -750,7 +751,8 @@ def learn_child(bench: Bench, path: Path | None, target: str, pipe: bool,
     ``pipe`` feeds the file through a pipe (a stream, as from another program) instead
     of handing the child the open file. Any other SOURCE (a file name, a broker URL) is
     read by the child itself, ``path`` is then None. The child is ``python -m
-    stream.cli``, the program the ``sapwood`` script runs, with this interpreter.
+    stream.cli``, the program the ``sapwood`` script runs, with this interpreter and
+    this copy of sapwood.
     """
     summary_path = bench.workdir / "child-summary.json"
     errors_path = bench.workdir / "child-stderr.txt"
@@ -765,7 +767,7 @@ def learn_child(bench: Bench, path: Path | None, target: str, pipe: bool,
         start = bench.clock()
         child = subprocess.Popen(command, stdin=subprocess.PIPE if pipe else source_file,
                                  stdout=subprocess.DEVNULL, stderr=errors,
-                                 cwd=bench.workdir)
+                                 cwd=bench.workdir, env=same_code_env())
         feeder = None
         if pipe:
             feeder = threading.Thread(target=_feed, args=(path, child.stdin), daemon=True)

@@ -25,7 +25,6 @@ from __future__ import annotations
 import csv
 import itertools
 import json
-import os
 import subprocess
 import sys
 from pathlib import Path
@@ -33,6 +32,7 @@ from pathlib import Path
 import pytest
 from river.datasets import synth
 
+from stream.child_env import same_code_env
 from stream.cli import main
 
 AGRAWAL_KEYS = ("salary", "commission", "age", "elevel", "car", "zipcode", "hvalue",
@@ -75,9 +75,9 @@ def run_main(args: list[str], capsys) -> tuple[int, str, str]:
 
 
 def run_process(args: list[str], cwd: Path, stdin: bytes = b"") -> subprocess.CompletedProcess:
-    """``python -m stream.cli ARGS`` as a real process (inherits NUMBA_CACHE_DIR)."""
+    """``python -m stream.cli ARGS`` as a real process running this checkout's code."""
     return subprocess.run([sys.executable, "-m", "stream.cli", *map(str, args)],
-                          input=stdin, capture_output=True, cwd=cwd, env=dict(os.environ),
+                          input=stdin, capture_output=True, cwd=cwd, env=same_code_env(),
                           timeout=300)
 
 
@@ -548,7 +548,7 @@ def test_demo_runner_smoke(tmp_path):
     demo = Path(__file__).resolve().parent.parent / "demo" / "run.py"
     out = tmp_path / "demo"
     done = subprocess.run([sys.executable, str(demo), "--rows", "5000", "--out", str(out)],
-                          capture_output=True, text=True, cwd=tmp_path, env=dict(os.environ),
+                          capture_output=True, text=True, cwd=tmp_path, env=same_code_env(),
                           timeout=600)
     assert done.returncode == 0, done.stderr
     announced = done.stdout.split("Where things went:", 1)[1].splitlines()

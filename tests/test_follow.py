@@ -25,6 +25,7 @@ import pytest
 
 from connectors.follow import FollowControl, FollowStopped, GrowingFile
 from connectors.sources import open_sources
+from stream.child_env import same_code_env
 from stream.errors import ConfigError
 
 POLL = 0.01
@@ -213,16 +214,6 @@ def test_growing_file_is_a_live_stream(tmp_path):
 
 # ------------------------------------------------------------------------- the command
 
-REPO = Path(__file__).resolve().parents[1]
-
-
-def code_env() -> dict:
-    """The environment of the learner processes: this checkout's code first, whatever
-    copy of sapwood is installed."""
-    return {**os.environ, "PYTHONPATH": os.pathsep.join(
-        [str(REPO)] + [p for p in os.environ.get("PYTHONPATH", "").split(os.pathsep) if p])}
-
-
 def sapwood(*args: str) -> list[str]:
     return [sys.executable, "-m", "stream.cli", "learn", *args]
 
@@ -237,7 +228,7 @@ def test_sigterm_checkpoints_exits_0_and_the_same_command_goes_on(tmp_path):
     args = [str(feed), "--target", "alarm", "--follow", "--poll-seconds", "0.05",
             "--checkpoint", str(out / "c.ckpt"), "--predictions", str(out / "p.jsonl"),
             "--summary", str(out / "s.json"), "--kind", "n=ignore", "-q"]
-    proc = subprocess.Popen(sapwood(*args), stderr=subprocess.PIPE, env=code_env())
+    proc = subprocess.Popen(sapwood(*args), stderr=subprocess.PIPE, env=same_code_env())
     deadline = time.monotonic() + 120
     while not (out / "p.jsonl").exists() or \
             len((out / "p.jsonl").read_text().splitlines()) < 3000:
@@ -255,7 +246,7 @@ def test_sigterm_checkpoints_exits_0_and_the_same_command_goes_on(tmp_path):
     with open(feed, "a") as more:
         more.write("".join(rows[4000:]))
     done = subprocess.run(sapwood(*args, "--idle-exit", "1"), capture_output=True,
-                          env=code_env())
+                          env=same_code_env())
     assert done.returncode == 0, done.stderr.decode()
     summary = json.loads((out / "s.json").read_text())
     assert summary["stopped"] == "idle" and summary["records"] == 6000
@@ -265,5 +256,5 @@ def test_sigterm_checkpoints_exits_0_and_the_same_command_goes_on(tmp_path):
     plain.mkdir()
     subprocess.run(sapwood(str(feed), "--target", "alarm", "--kind", "n=ignore",
                            "--predictions", str(plain / "p.jsonl"), "-q"), check=True,
-                   env=code_env())
+                   env=same_code_env())
     assert (out / "p.jsonl").read_text() == (plain / "p.jsonl").read_text()

@@ -27,7 +27,6 @@ from __future__ import annotations
 import csv
 import itertools
 import json
-import os
 import random
 import shutil
 import signal
@@ -42,6 +41,7 @@ import pytest
 from river.datasets import synth
 
 from connectors.local_brokers import REDIS_SERVER, LocalRedis
+from stream.child_env import same_code_env
 from stream.rule_sources import load_rules
 from stream.saved_model import load_model
 
@@ -79,16 +79,6 @@ def write_agrawal(path: Path, n: int = N) -> list[dict]:
     return rows
 
 
-REPO = Path(__file__).resolve().parents[1]
-
-
-def code_env() -> dict:
-    """The environment of the learner processes: this checkout's code first, whatever
-    copy of sapwood is installed."""
-    return {**os.environ, "PYTHONPATH": os.pathsep.join(
-        [str(REPO)] + [p for p in os.environ.get("PYTHONPATH", "").split(os.pathsep) if p])}
-
-
 def command(source: str, out: Path, extra: list[str] = ()) -> list[str]:
     return [sys.executable, "-m", "stream.cli", "learn", source, "--target", "class",
             "--checkpoint", str(out / "run.ckpt"), "--checkpoint-every", "2000",
@@ -119,7 +109,7 @@ def kill_and_restart(cmd: list[str], predictions: Path, ends: np.ndarray,
     for point in points:
         threshold = int(ends[point - 1])
         proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
-                                env=code_env())
+                                env=same_code_env())
         while proc.poll() is None:
             if predictions.exists() and predictions.stat().st_size >= threshold:
                 proc.send_signal(signal.SIGKILL)
@@ -131,7 +121,7 @@ def kill_and_restart(cmd: list[str], predictions: Path, ends: np.ndarray,
         else:
             assert proc.returncode == 0, err.decode()
             finished_early += 1
-    done = subprocess.run(cmd, capture_output=True, env=code_env())
+    done = subprocess.run(cmd, capture_output=True, env=same_code_env())
     assert done.returncode == 0, done.stderr.decode()
     return {"kills": kills, "finished_early": finished_early, "points": points}
 
@@ -206,7 +196,7 @@ def test_file_stream_killed_twenty_times_equals_uninterrupted(scratch):
     run.mkdir()
     started = time.monotonic()
     # the uninterrupted run (it also warms the compiled-code cache for the others)
-    done = subprocess.run(command(str(data), ref), capture_output=True, env=code_env())
+    done = subprocess.run(command(str(data), ref), capture_output=True, env=same_code_env())
     assert done.returncode == 0, done.stderr.decode()
     outcome = kill_and_restart(command(str(data), run), run / "predictions.jsonl",
                                line_ends(ref / "predictions.jsonl"), SEED)
@@ -246,7 +236,7 @@ def test_redis_stream_killed_twenty_times_equals_uninterrupted(scratch):
         url = f"redis://127.0.0.1:{server.port}/0?stream=agrawal&idle_exit=0&group="
         started = time.monotonic()
         done = subprocess.run(command(url + "reference", ref), capture_output=True,
-                              env=code_env())
+                              env=same_code_env())
         assert done.returncode == 0, done.stderr.decode()
         outcome = kill_and_restart(command(url + "killed", run), run / "predictions.jsonl",
                                    line_ends(ref / "predictions.jsonl"), SEED + 1)
