@@ -1,4 +1,5 @@
-"""Read-only views of a tree's main part, shared by the classifier and the regressor.
+"""Read-only views of a tree's main part, shared by the classifier and the regressor,
+and the check of the feature arguments both constructors take.
 
 Both learners keep their nodes in tables with the node layout of
 :mod:`stream.node_layout`; :class:`MainTreeViews` reads them. A subclass holds ``tables_``.
