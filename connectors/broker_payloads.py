@@ -12,8 +12,8 @@ Inside
   frame plus :class:`~connectors.base.Reject` entries; :func:`frame_from_fields` does the
   same for Redis stream entries whose field/value pairs are the record.
 * Retries: :class:`Backoff` (bounded exponential with jitter) and :func:`with_retries`.
-* The registry: ``BROKERS`` (URL scheme -> opener, the modules imported only when used),
-  :func:`open_broker` and :func:`open_broker_sources` (the hook for ``open_sources``).
+
+The registry of broker sources by URL scheme is one level up, in :mod:`connectors.brokers`.
 
 For brokers, a record's "line" is its message number: a per-source sequence starting at 1
 that grows by one for every message the source hands out (and goes on from the
@@ -38,7 +38,7 @@ import pandas as pd
 
 from stream.errors import ConfigError, InputError
 
-from .base import Reject, Source
+from .base import Reject
 from .delimited import raw_text
 
 log = logging.getLogger("sapwood.connectors")
@@ -595,73 +595,3 @@ def frame_from_fields(entries: Sequence[Sequence[bytes]], lines: np.ndarray, ori
 
 def _text(value: bytes | str) -> str:
     return value.decode("utf-8", "replace") if isinstance(value, bytes) else value
-
-
-# ---------------------------------------------------------------------------------------
-# the registry
-# ---------------------------------------------------------------------------------------
-
-def _open_mqtt(spec: str, batch_rows: int, **options: Any) -> Source:
-    from .mqtt import MqttSource
-    return MqttSource(spec, batch_rows, **options)
-
-
-def _open_redis(spec: str, batch_rows: int, **options: Any) -> Source:
-    from .redis_streams import RedisStreamSource
-    return RedisStreamSource(spec, batch_rows, **options)
-
-
-BROKERS: dict[str, Callable[..., Source]] = {
-    "mqtt": _open_mqtt,
-    "mqtts": _open_mqtt,
-    "redis": _open_redis,
-    "rediss": _open_redis,
-}
-"""URL scheme -> opener ``(spec, batch_rows, **options) -> Source``. The client library
-of a broker is imported only when a source of its kind is opened."""
-
-
-def is_broker_spec(spec: str) -> bool:
-    """True when ``spec`` is a URL whose scheme is in ``BROKERS``."""
-    return scheme_of(spec) in BROKERS
-
-
-def open_broker(spec: str, batch_rows: int = 65536, **options: Any) -> Source:
-    """Open the broker source a URL names.
-
-    Parameters
-    ----------
-    spec
-        ``mqtt[s]://[user:password@]host[:port]/topic/filter?client_id=...`` or
-        ``redis[s]://[user:password@]host[:port][/db]?stream=...&group=...&consumer=...``.
-    batch_rows
-        Most records per batch.
-    **options
-        Source options, overriding the URL's query options of the same name.
-
-    Raises
-    ------
-    ConfigError
-        Unknown scheme or a bad option (messages show the redacted spec).
-    InputError
-        The broker cannot be reached or refuses the connection.
-    """
-    scheme = scheme_of(spec)
-    if scheme not in BROKERS:
-        raise ConfigError(f"broker scheme must be one of {', '.join(sorted(BROKERS))}, "
-                          f"got {scheme!r} in {redacted(spec)!r}")
-    return BROKERS[scheme](spec, batch_rows, **options)
-
-
-def open_broker_sources(specs: Sequence[str], batch_rows: int) -> Source | None:
-    """The hook for ``open_sources``: the broker source when ``specs`` names one, else None.
-
-    A broker source is live and never ends on its own, so it must be the only source.
-    """
-    brokers = [s for s in specs if is_broker_spec(s)]
-    if not brokers:
-        return None
-    if len(specs) != 1:
-        raise ConfigError("a broker source (mqtt://, redis://) must be the only source, "
-                          f"got {len(specs)} sources")
-    return open_broker(brokers[0], batch_rows)

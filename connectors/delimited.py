@@ -56,11 +56,11 @@ from collections import deque
 from concurrent.futures import ThreadPoolExecutor
 from typing import BinaryIO, Callable, Iterator
 
-import numba
 import numpy as np
 import pandas as pd
 
 from stream.errors import InputError
+from stream.jit import njit
 
 from .base import RawBatch, Reject
 
@@ -208,7 +208,7 @@ class LineStream:
 # the record scanner (exact path)
 # ---------------------------------------------------------------------------------------
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _scan_records(buf, pos, final, delim, quote, line, cap,
                   starts, ends, nexts, lines, fields):  # pragma: no cover - compiled
     """Split ``buf[pos:]`` into records, mirroring pandas' C tokenizer.
@@ -297,7 +297,7 @@ def _scan_records(buf, pos, final, delim, quote, line, cap,
     return pos, k, line, 0
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _gather(buf, starts, stops, out):  # pragma: no cover - compiled
     """Copy the byte ranges [starts[i], stops[i]) of ``buf`` one after another into out."""
     o = 0

@@ -67,8 +67,8 @@ from stream.errors import ConfigError
 
 from .base import RawBatch
 from .broker_payloads import (DEFAULT_LINGER, MAX_MESSAGE_BYTES, PAYLOAD_FORMATS, Backoff,
-                              Options, input_error, parse_address,
-                              parse_payloads, with_retries)
+                              Options, input_error, parse_address, parse_payloads,
+                              with_retries)
 
 log = logging.getLogger("sapwood.connectors")
 

@@ -24,8 +24,8 @@ import sys
 import zlib
 from typing import BinaryIO, Callable, Iterator
 
+from stream.checks import require_int
 from stream.errors import ConfigError, InputError, SchemaError
-from stream.settings import require_int
 
 from .base import RawBatch, Source
 from .delimited import CsvReader, TsvReader
@@ -509,6 +509,6 @@ def _open_broker(specs: list[str], batch_rows: int) -> Source | None:
     when a spec looks like a URL)."""
     if not any("://" in spec for spec in specs):
         return None
-    from .broker_payloads import open_broker_sources
+    from .brokers import open_broker_sources
 
     return open_broker_sources(specs, batch_rows)

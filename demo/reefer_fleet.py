@@ -28,8 +28,8 @@ import click
 import numpy as np
 import pandas as pd
 
+from stream.checks import require_float, require_int
 from stream.errors import ConfigError
-from stream.settings import require_float, require_int
 
 COLUMNS = (
     "container_id", "time", "cargo", "setpoint_c", "supply_air_c", "return_air_c",

@@ -1,26 +1,39 @@
 """sapwood's engine: a streaming Hoeffding tree that scores each record, then learns it.
 
-Public names (imported lazily, so ``import stream`` stays cheap):
+Public names (loaded on first use, so ``import stream`` stays cheap):
 
-TreeClassifier, Scored   the learner (stream.classifier)
-TreeSettings             how the tree grows (stream.settings)
-LearnJob, run_learn      a whole learning run with its outputs (stream.engine)
-extract_rules, render_text, Rule, Condition   rules (stream.rules)
+========================================  ===========================================
+TreeClassifier, Scored, TreeSettings      the classification tree (``stream.classify``)
+TreeRegressor, RegressionSettings         the regression tree (``stream.regress``)
+LearnJob, run_learn                       a whole learning run with its outputs
+                                          (``stream.run``)
+extract_rules, render_text, Rule,         rules read off a tree (``stream.rules``)
+Condition
+========================================  ===========================================
+
+The wings, each importing only those below it::
+
+    cli      the sapwood command                      (stream.cli)
+    views    operator views; bench  the benchmark     (stream.views, stream.bench)
+    run      a learning run: schema, encoding, tasks, metrics, checkpoints, snapshots
+    rules    rules, their text, diffs and Markdown
+    classify / regress   the two trees (model, kernel, tables, splits, criteria, settings)
+    tree     what both trees share (node layout and kernel, drift detectors, paths)
+    errors, checks, jit, lazy, child_env    the ground floor
+
+``connectors`` (record sources and sinks) stands beside ``run``, below it, and imports
+nothing of the learner.
 """
 
 from __future__ import annotations
 
-import importlib
+from .lazy import lazy_face
 
-_PUBLIC = {
-    "TreeClassifier": "classifier", "Scored": "classifier", "TreeSettings": "settings",
-    "LearnJob": "engine", "run_learn": "engine", "extract_rules": "rules",
-    "render_text": "rules", "Rule": "rules", "Condition": "rules",
-}
-__all__ = sorted(_PUBLIC)
-
-
-def __getattr__(name: str):
-    if name in _PUBLIC:
-        return getattr(importlib.import_module(f".{_PUBLIC[name]}", __name__), name)
-    raise AttributeError(f"module 'stream' has no attribute {name!r}")
+__getattr__, __all__ = lazy_face(__name__, {
+    "TreeClassifier": "classify.model", "Scored": "classify.model",
+    "TreeSettings": "classify.settings",
+    "TreeRegressor": "regress.model", "RegressionSettings": "regress.settings",
+    "LearnJob": "run.job", "run_learn": "run.engine",
+    "extract_rules": "rules.classify", "render_text": "rules.text", "Rule": "rules.rule",
+    "Condition": "tree.paths",
+})

@@ -3,8 +3,9 @@
 Compiled machine code is cached on disk so that only the first run pays for compilation.
 numba keys its cache on each function's own source file, so a kernel whose callee in
 another module changed would load stale code. sapwood therefore keeps its cache in a
-directory named after a digest of every kernel source file: any edit, or an upgrade of
-the package, selects a fresh directory. The directory lives under the user's cache
+directory named after a digest of every source file that holds a kernel, in every
+folder of ``stream`` and ``connectors``: any edit, or an upgrade of the package, selects
+a fresh directory. Every compiled function goes through :func:`njit` below. The directory lives under the user's cache
 (``$XDG_CACHE_HOME`` or ``~/.cache``), which also works when the package itself is
 installed read-only. An explicit ``NUMBA_CACHE_DIR`` in the environment wins.
 """
@@ -17,16 +18,27 @@ from pathlib import Path
 
 import numba
 
-_PACKAGE_DIR = Path(__file__).resolve().parent
+_CODE_ROOT = Path(__file__).resolve().parents[1]
+KERNEL_PACKAGES = ("stream", "connectors")
+"""The packages (under the code root) whose kernels share the cache."""
+
+
+def kernel_sources(root: Path = _CODE_ROOT) -> list[Path]:
+    """Every source file of :data:`KERNEL_PACKAGES` that holds a compiled function, in a
+    stable order (subpackages included)."""
+    found = []
+    for package in KERNEL_PACKAGES:
+        for path in sorted((root / package).rglob("*.py")):
+            if b"@njit" in path.read_bytes():
+                found.append(path)
+    return found
 
 
 def _kernel_digest() -> str:
     digest = hashlib.sha256(numba.__version__.encode())
-    for path in sorted(_PACKAGE_DIR.glob("*.py")):
-        text = path.read_bytes()
-        if b"@njit" in text:
-            digest.update(path.name.encode())
-            digest.update(text)
+    for path in kernel_sources():
+        digest.update(path.relative_to(_CODE_ROOT).as_posix().encode())
+        digest.update(path.read_bytes())
     return digest.hexdigest()[:16]
 
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 import shutil
 from pathlib import Path
 
-import stream.engine as engine
-from stream import checkpoint as ck
+from stream.run import checkpoint as ck
+import stream.run.resume as resume
 
 
 def keep_every_checkpoint(monkeypatch, folder: Path) -> list[str]:
@@ -20,5 +20,5 @@ def keep_every_checkpoint(monkeypatch, folder: Path) -> list[str]:
         copies.append(shutil.copy(path, folder / f"ckpt-{len(copies):03d}"))
         return size
 
-    monkeypatch.setattr(engine, "write_checkpoint", keep_each)
+    monkeypatch.setattr(resume, "write_checkpoint", keep_each)
     return copies

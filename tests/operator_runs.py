@@ -20,9 +20,10 @@ import numpy as np
 import pandas as pd
 from river.datasets import synth
 
-from stream.engine import LearnJob, run_learn
-from stream.scoring import score_sources
-from stream.settings import TreeSettings
+from stream.classify.settings import TreeSettings
+from stream.run.engine import run_learn
+from stream.run.job import LearnJob
+from stream.run.scoring import score_sources
 
 FEATURES = ("salary", "commission", "age", "elevel", "car", "zipcode", "hvalue", "hyears",
             "loan")

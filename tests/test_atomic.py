@@ -14,9 +14,9 @@ import sys
 
 import pytest
 
-import stream.atomic as atomic
-from stream.atomic import atomic_writer, write_atomic
 from stream.errors import ConfigError
+import stream.run.atomic as atomic
+from stream.run.atomic import atomic_writer, write_atomic
 
 
 def _names(directory) -> list[str]:

@@ -18,10 +18,12 @@ from click.testing import CliRunner
 from river import evaluate, metrics, tree
 from river.datasets import synth
 
-from stream import bench
-from stream.bench import (Bench, Check, Column, SuiteResult, command, learn_child,
-                          learners_suite, render_markdown, render_text, run_bench,
-                          write_sea_csv)
+from stream.bench import common, output, streams
+from stream.bench.command import command, run_bench
+from stream.bench.common import Bench, Check, Column, SuiteResult
+from stream.bench.end_to_end import learn_child, write_sea_csv
+from stream.bench.learners import learners_suite
+from stream.bench.output import render_markdown, render_text
 from stream.errors import SapwoodError
 
 
@@ -118,7 +120,7 @@ def test_end_to_end_and_memory_suites_on_small_files(tmp_path):
     small, large = (r["peak_mb"] for r in memory.rows)
     assert small > 0 and large > 0
     assert memory.checks[1].value == pytest.approx(large / small)
-    text = render_text([e2e, memory], bench.environment())
+    text = render_text([e2e, memory], output.environment())
     assert "read_csv rows/s" in text and "peak MB" in text and text.count("target ") >= 4
 
 
@@ -177,9 +179,9 @@ def test_markdown_table_has_one_line_per_row(monkeypatch, tmp_path):
                            [{"name": "a", "rate": 1234.5}, {"name": "bb", "rate": None}],
                            [Check("rate", 1234.5, 2000.0)], ["made up"])
 
-    monkeypatch.setitem(bench.SUITES, "tiny", tiny_suite)
+    monkeypatch.setitem(common.SUITES, "tiny", tiny_suite)
     results = run_bench(Bench(tmp_path), ["tiny"])
-    env = bench.environment()
+    env = output.environment()
     markdown = render_markdown(results, env).splitlines()
     start = markdown.index("| name | rate |")
     assert markdown[start:start + 4] == ["| name | rate |", "|:---|---:|", "| a | 1,234 |",
@@ -192,10 +194,10 @@ def test_markdown_table_has_one_line_per_row(monkeypatch, tmp_path):
 
 
 def test_suites_and_streams_are_registries(tmp_path):
-    assert list(bench.SUITES) == ["learners", "drift", "regression", "end-to-end", "memory",
+    assert list(common.SUITES) == ["learners", "drift", "regression", "end-to-end", "memory",
                                   "feeds"]
-    assert list(bench.STREAMS) == ["sea", "agrawal", "hyperplane", "rbf10", "rbf100", "led"]
-    assert bench.STREAMS["rbf100"].min_ratio == 50 and bench.STREAMS["sea"].min_ratio == 100
+    assert list(streams.STREAMS) == ["sea", "agrawal", "hyperplane", "rbf10", "rbf100", "led"]
+    assert streams.STREAMS["rbf100"].min_ratio == 50 and streams.STREAMS["sea"].min_ratio == 100
     with pytest.raises(SapwoodError, match="suite must be one of"):
         run_bench(Bench(tmp_path), ["nope"])
     with pytest.raises(SapwoodError, match="stream must be one of"):

@@ -16,9 +16,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from connectors.broker_payloads import (BROKERS, Backoff, Options, frame_from_fields,
-                                        is_broker_spec, open_broker, open_broker_sources,
-                                        parse_address, parse_payloads, redacted, with_retries)
+from connectors.broker_payloads import (Backoff, Options, frame_from_fields, parse_address,
+                                        parse_payloads, redacted, with_retries)
+from connectors.brokers import BROKERS, is_broker_spec, open_broker, open_broker_sources
 from stream.errors import EXIT_INPUT, ConfigError, InputError
 
 SECRET = "s3cr3t-Pa55"

@@ -34,14 +34,15 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 from river.datasets import synth
-
-import stream.engine as engine
-from connectors.sources import open_sources
-from stream import checkpoint as ck
 from tests.checkpoint_copies import keep_every_checkpoint
-from stream.cli import cli
-from stream.engine import LearnJob, LearnRun
+
+from connectors.sources import open_sources
+from stream.cli.main import cli
 from stream.errors import ConfigError, ModelFileError
+from stream.run import checkpoint as ck
+from stream.run.engine import LearnRun
+from stream.run.job import LearnJob
+import stream.run.resume as resume
 
 
 def pinned_wall() -> float:
@@ -177,7 +178,7 @@ def test_resuming_from_every_checkpoint_equals_the_uninterrupted_run(request, tm
     out.mkdir()
     copies = keep_every_checkpoint(monkeypatch, tmp_path)
     reference = LearnRun(job_for(data, out), wall=pinned_wall).run()
-    monkeypatch.setattr(engine, "write_checkpoint", ck.write_checkpoint)
+    monkeypatch.setattr(resume, "write_checkpoint", ck.write_checkpoint)
     full = tmp_path / "full"
     shutil.copytree(out, full)
     assert len(copies) >= 6
@@ -289,7 +290,7 @@ def test_standard_input_cannot_be_checkpointed(tmp_path):
 
 
 def test_snapshots_written_after_the_checkpoint_are_removed(tmp_path):
-    from stream.snapshots import SnapshotStore
+    from stream.run.snapshots import SnapshotStore
 
     store = SnapshotStore(tmp_path)
     for records in (100, 200, 300, 400):

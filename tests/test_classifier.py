@@ -31,19 +31,21 @@ from hypothesis import HealthCheck, given, settings, strategies as st
 from river import datasets as river_datasets
 from river import tree as river_tree
 from river.datasets import synth
-from river.tree.nodes.branch import NominalBinaryBranch, NominalMultiwayBranch, NumericBinaryBranch
+from river.tree.nodes.branch import (NominalBinaryBranch, NominalMultiwayBranch,
+                                     NumericBinaryBranch)
 from river.tree.nodes.htc_nodes import LeafMajorityClass
 from scipy import stats as scipy_stats
 from sklearn.tree import DecisionTreeClassifier
 
-import stream.settings as sapwood_settings
-from stream.classifier import Scored, TreeClassifier
-from stream.classifier_kernel import leaf_bytes, leaf_cap
-from stream.settings import TreeSettings
-from stream.tables import (CHILD_START, CREATED, EQUALS, FEATURE, H_NBUF, H_NEDGES, H_READY, KIND,
-                           LEAF, MULTIWAY, N_CHILDREN, NUMERIC, PARENT, S_ACTIVE, S_CATS_SEEN,
-                           S_CLASSES_SEEN, S_DEACTIVATED, S_LEARNED, S_LEAVES, S_NODES, S_PRUNED,
-                           S_SPLITS, SLOT, THRESHOLD, WEIGHT)
+from stream.classify.kernel import leaf_bytes, leaf_cap
+from stream.classify.model import Scored, TreeClassifier
+from stream.classify.settings import TreeSettings
+from stream.classify.tables import (CHILD_START, CREATED, EQUALS, FEATURE, H_NBUF, H_NEDGES,
+                                    H_READY, KIND, LEAF, MULTIWAY, N_CHILDREN, NUMERIC,
+                                    PARENT, S_ACTIVE, S_CATS_SEEN, S_CLASSES_SEEN,
+                                    S_DEACTIVATED, S_LEARNED, S_LEAVES, S_NODES, S_PRUNED,
+                                    S_SPLITS, SLOT, THRESHOLD, WEIGHT)
+from stream.tree.settings import DETECTORS
 
 AGRAWAL_NOMINAL = ("elevel", "car", "zipcode")   # river's Agrawal docs treat these as nominal
 
@@ -523,20 +525,16 @@ def test_batches_give_the_same_predictions_and_tables(which, cuts, observer, lea
                                      criterion=criterion, **MIXED_SETTINGS, **PLAIN))
 
 
-_DETECTORS = sorted(set(getattr(sapwood_settings, "DETECTORS", {})) - {"off"})
+_DETECTORS = sorted(set(DETECTORS) - {"off"})
 
 
-@pytest.mark.skipif(not _DETECTORS, reason="this version has no drift detectors")
 @settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(**_batch_settings, detector=st.sampled_from(_DETECTORS or ["none"]))
+@given(**_batch_settings, detector=st.sampled_from(_DETECTORS))
 def test_batches_with_drift_detectors_give_the_same_predictions_and_tables(
         which, cuts, observer, leaf_model, criterion, detector):
-    # KNOWN BUG (fails at the time of writing, drift code uncommitted): after an alternate
-    # subtree is swapped in or dropped, TreeClassifier._recycle puts the dead node ids on
-    # the free stack only between kernel calls, i.e. at batch boundaries, so node ids (the
-    # `leaf` output and the tables) depend on how the stream was cut. Predictions agree.
-    # Smallest case found: Agrawal mixed stream, cuts=[] (one batch vs record by record),
-    # naive_bayes leaves, gini, adwin: leaf ids differ from record 1956 on.
+    # with drift watching too: alternates start, swap and drop, and dead node ids are
+    # recycled, at the same records whatever the batch cuts (the kernel returns before it
+    # recycles, so recycling happens at a fixed record), so node ids and tables agree
     _check_batches(which, cuts, dict(numeric_observer=observer, leaf_model=leaf_model,
                                      criterion=criterion, detector=detector,
                                      **MIXED_SETTINGS))

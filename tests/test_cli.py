@@ -33,7 +33,7 @@ import pytest
 from river.datasets import synth
 
 from stream.child_env import same_code_env
-from stream.cli import main
+from stream.cli.main import main
 
 AGRAWAL_KEYS = ("salary", "commission", "age", "elevel", "car", "zipcode", "hvalue",
                 "hyears", "loan")

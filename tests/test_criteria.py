@@ -22,9 +22,10 @@ from river.tree.split_criterion import GiniSplitCriterion, InfoGainSplitCriterio
 from scipy.stats import entropy as scipy_entropy
 from sklearn.tree import DecisionTreeClassifier
 
-from stream.criteria import (GINI, INFO_GAIN, criterion_range, gini_impurity, hoeffding_bound,
-                             split_merit)
-from stream.settings import CRITERIA
+from stream.classify.criteria import (GINI, INFO_GAIN, criterion_range, gini_impurity,
+                                      split_merit)
+from stream.classify.settings import CRITERIA
+from stream.tree.bound import hoeffding_bound
 
 DELTA = 1e-7   # published default (Domingos & Hulten, KDD 2000)
 TAU = 0.05     # published default tie threshold

@@ -31,17 +31,18 @@ import numpy as np
 import pytest
 from river import metrics as river_metrics
 from river.datasets import synth
-
-import stream.engine as engine
-from connectors.local_brokers import MOSQUITTO, REDIS_SERVER, LocalMosquitto, LocalRedis
-from stream import checkpoint as ck
 from tests.checkpoint_copies import keep_every_checkpoint
-from stream.classifier import TreeClassifier
-from stream.delayed_labels import EarlyLabels, PendingRecords, watermarks
-from stream.engine import LearnJob, LearnRun, run_learn
+
+from connectors.local_brokers import MOSQUITTO, REDIS_SERVER, LocalMosquitto, LocalRedis
+from stream.classify.model import TreeClassifier
+from stream.classify.settings import TreeSettings
 from stream.errors import ConfigError
-from stream.rule_sources import load_rules
-from stream.settings import TreeSettings
+from stream.run import checkpoint as ck
+from stream.run.delayed_labels import EarlyLabels, PendingRecords, watermarks
+from stream.run.engine import LearnRun, run_learn
+from stream.run.job import LearnJob
+import stream.run.resume as resume
+from stream.views.rule_sources import load_rules
 
 N = 4000
 T0 = 1_700_000_000
@@ -357,7 +358,7 @@ def test_resuming_from_every_checkpoint_equals_the_uninterrupted_run(files, sea,
 
     copies = keep_every_checkpoint(monkeypatch, tmp_path)
     reference = LearnRun(job()).run()
-    monkeypatch.setattr(engine, "write_checkpoint", ck.write_checkpoint)
+    monkeypatch.setattr(resume, "write_checkpoint", ck.write_checkpoint)
     full = tmp_path / "full"
     shutil.copytree(out, full)
     assert len(copies) >= 5 and reference["labels"]["expired"] > 0

@@ -15,13 +15,15 @@ import pytest
 from click.testing import CliRunner
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
 from operator_runs import read_csv_rows, rules_that_hold, shared_run
-from stream.diff import diff_rules, load_side, pick_pair, render_diff_text
+
+from stream.cli.views import diff as diff_command
 from stream.errors import ConfigError, InputError
-from stream.rules import Condition, Rule, rules_from_payload
-from stream.snapshots import SnapshotStore
-from stream.views_cli import diff as diff_command
+from stream.rules.diff import diff_rules, render_diff_text
+from stream.rules.rule import Rule, rules_from_payload
+from stream.run.snapshots import SnapshotStore
+from stream.tree.paths import Condition
+from stream.views.rule_sources import load_side, pick_pair
 
 
 def make_rule(rule_id: str, *conditions, predict: str | None = "yes", no: float = 10,
@@ -313,7 +315,7 @@ def test_command_refuses_a_negative_shift(run):
 
 
 def test_origin_and_fate_wording():
-    from stream.diff import fate_note, origin_note
+    from stream.rules.diff import fate_note, origin_note
 
     assert origin_note(["R2"]) == "carved from R2"
     assert fate_note(["R9"]) == "absorbed into R9"

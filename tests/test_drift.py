@@ -37,12 +37,13 @@ from river import drift as river_drift
 from river import tree as river_tree
 from river.datasets import synth
 
-from stream.classifier import TreeClassifier
-from stream.drift import adwin_run, page_hinkley_run
-from stream.engine import LearnJob, run_learn
-from stream.rules import node_conditions
-from stream.settings import TreeSettings
-from stream.tables import CHILD_START, CREATED
+from stream.classify.model import TreeClassifier
+from stream.classify.settings import TreeSettings
+from stream.classify.tables import CHILD_START, CREATED
+from stream.run.engine import run_learn
+from stream.run.job import LearnJob
+from stream.tree.drift import adwin_run, page_hinkley_run
+from stream.tree.paths import node_conditions
 
 Stream = collections.namedtuple("Stream", "rows names X y classes")
 PH_MODES = {"both": 0, "up": 1, "down": 2}   # page_hinkley_run's mode codes
@@ -394,7 +395,7 @@ def test_abrupt_sea_switch_alarms_within_2000_records_where_the_change_is(noise,
 
 def test_band_geometry_helper():
     # the helper above, on boxes worked out by hand
-    from stream.rules import Condition as C
+    from stream.tree.paths import Condition as C
     assert _band_touched(())
     assert not _band_touched((C("x0", "<=", 3.0), C("x1", "<=", 3.9)))     # max sum 6.9
     assert _band_touched((C("x0", "<=", 3.0), C("x1", "<=", 4.1)))

@@ -19,9 +19,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from connectors import RawBatch, Reject, open_sources
-from stream.encoding import MISSING_MARKERS, Encoder, factorize_labels, parse_numbers
 from stream.errors import ModelFileError
-from stream.schema import Field, Schema, infer_schema
+from stream.run.encoding import Encoder
+from stream.run.schema import Field, Schema, infer_schema
+from stream.run.values import MISSING_MARKERS, parse_numbers
+from stream.run.values import factorize_labels
 
 RIVER_DATA = os.path.join(os.path.dirname(river.__file__), "datasets")
 

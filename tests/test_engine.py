@@ -34,9 +34,10 @@ from river import tree as river_tree
 from river import utils as river_utils
 from river.datasets import synth
 
-from stream.engine import LearnJob, LearnRun, run_learn
+from stream.classify.settings import TreeSettings
 from stream.errors import ConfigError
-from stream.settings import TreeSettings
+from stream.run.engine import LearnRun, run_learn
+from stream.run.job import LearnJob
 
 AGRAWAL_KEYS = ("salary", "commission", "age", "elevel", "car", "zipcode", "hvalue",
                 "hyears", "loan")
@@ -302,7 +303,7 @@ def test_empty_input_announces_only_outputs_it_wrote(tmp_path):
 # ---------------------------------------------------------------- snapshot directory
 
 def test_closing_snapshot_is_written_for_each_run(tmp_path):
-    from stream.rule_sources import load_rules
+    from stream.views.rule_sources import load_rules
 
     snaps = tmp_path / "snaps"
     snaps.mkdir()

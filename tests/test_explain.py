@@ -12,15 +12,15 @@ import json
 
 import pytest
 from click.testing import CliRunner
-
 from operator_runs import FEATURES, TARGET, read_csv_rows, rules_that_hold, shared_run
+
+from stream.cli.views import explain
 from stream.errors import ConfigError, InputError
-from stream.explain import (RuleMatcher, explain_batch, file_batches, match_rules,
-                            record_batches)
-from stream.rules import rules_from_payload
-from stream.saved_model import load_model
-from stream.snapshots import SnapshotStore
-from stream.views_cli import explain
+from stream.rules.rule import rules_from_payload
+from stream.run.saved_model import load_model
+from stream.run.snapshots import SnapshotStore
+from stream.views.explain import (RuleMatcher, explain_batch, file_batches, match_rules,
+                                  record_batches)
 
 
 def _last_snapshot(run) -> dict:

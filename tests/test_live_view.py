@@ -15,13 +15,13 @@ import threading
 
 import pytest
 from click.testing import CliRunner
-
 from operator_runs import shared_run
+
+from stream.cli.views import watch as watch_command
 from stream.errors import ModelFileError
-from stream.live_view import ASCII_BLOCKS, WatchState, render_frame, sparkline, watch
-from stream.run_logs import LogTail, read_metrics
-from stream.snapshots import SnapshotStore
-from stream.views_cli import watch as watch_command
+from stream.run.snapshots import SnapshotStore
+from stream.views.live_view import ASCII_BLOCKS, WatchState, render_frame, sparkline, watch
+from stream.views.run_logs import LogTail, read_metrics
 
 EVENTS = [
     {"record": 9000, "time": "2025-01-01T00:00:00Z", "kind": "alarm", "node": 3,

@@ -13,14 +13,15 @@ import re
 
 import pytest
 from click.testing import CliRunner
-
 from operator_runs import shared_run
-from stream.diff import diff_rules
+
+from stream.cli.views import notes
 from stream.errors import ConfigError
-from stream.markdown import _code, diff_markdown, rules_markdown, shift_note
-from stream.rules import Condition, Rule
-from stream.simplify import simplify
-from stream.views_cli import notes
+from stream.rules.diff import diff_rules
+from stream.rules.markdown import _code, diff_markdown, rules_markdown, shift_note
+from stream.rules.rule import Rule
+from stream.rules.simplify import simplify
+from stream.tree.paths import Condition
 
 
 def make_rule(rule_id, *conditions, predict="yes", no=10.0, yes=90.0):

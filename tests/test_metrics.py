@@ -17,8 +17,8 @@ from river import dummy, metrics as rm, utils as ru
 from sklearn import metrics as skm
 
 from stream.errors import ConfigError, ModelFileError
-from stream.metrics import (CLASSIFICATION_ROW, REGRESSION_ROW, ClassificationScore,
-                            RegressionScore)
+from stream.run.metrics import (CLASSIFICATION_ROW, REGRESSION_ROW, ClassificationScore,
+                                RegressionScore)
 
 HEADLINE_C = CLASSIFICATION_ROW[1:]
 HEADLINE_R = REGRESSION_ROW[1:]

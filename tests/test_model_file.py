@@ -22,11 +22,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-import stream.atomic as atomic
-import stream.model_file as model_file
 from stream.errors import EXIT_INPUT, ModelFileError
-from stream.model_file import (describe_model_file, json_problem, read_model_file,
-                               write_model_file)
+import stream.run.atomic as atomic
+import stream.run.model_file as model_file
+from stream.run.model_file import (describe_model_file, json_problem, read_model_file,
+                                   write_model_file)
 
 DTYPES = ["bool", "int8", "int16", "int32", "int64", "uint8", "uint16", "uint32", "uint64",
           "float16", "float32", "float64", "complex64", "complex128"]

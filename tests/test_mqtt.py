@@ -23,11 +23,11 @@ import pandas as pd
 import pytest
 
 from connectors.base import ResumableSource
-from connectors.broker_payloads import open_broker
+from connectors.brokers import open_broker
+from connectors.local_brokers import MOSQUITTO, LocalMosquitto, free_port
 from connectors.mqtt import MqttSource
 from connectors.quarantine import QuarantineWriter
 from connectors.sinks import open_prediction_sink
-from connectors.local_brokers import MOSQUITTO, LocalMosquitto, free_port
 from stream.errors import EXIT_INPUT, ConfigError, InputError
 
 SECRET = "pw-9f3Kq7"
@@ -242,7 +242,7 @@ def test_commit_acknowledges_exactly_what_it_covers(broker, cid):
 
 CRASHER = r"""
 import json, os, sys
-from connectors.broker_payloads import open_broker
+from connectors.brokers import open_broker
 src = open_broker(sys.argv[1], int(sys.argv[2]), idle_exit=1.0, retry=5)
 seen = []
 for batch in src.batches():

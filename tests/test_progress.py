@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import io
 
-from stream.progress import ProgressLine, format_duration, input_size
+from stream.views.progress import ProgressLine, format_duration, input_size
 
 
 class FakeTerminal(io.StringIO):

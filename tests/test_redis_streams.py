@@ -16,10 +16,10 @@ import numpy as np
 import pytest
 
 from connectors.base import ResumableSource
-from connectors.broker_payloads import open_broker
+from connectors.brokers import open_broker
+from connectors.local_brokers import REDIS_SERVER, LocalRedis, free_port
 from connectors.quarantine import QuarantineWriter
 from connectors.redis_streams import RedisStreamSource, entry_id
-from connectors.local_brokers import REDIS_SERVER, LocalRedis, free_port
 from connectors.sinks import open_prediction_sink
 from stream.errors import EXIT_INPUT, ConfigError, InputError
 
@@ -396,7 +396,7 @@ def test_learn_reads_a_stream_and_publishes_each_prediction_to_another(server, s
 
     from click.testing import CliRunner
 
-    from stream.cli import cli
+    from stream.cli.main import cli
 
     r = server.client()
     pipe = r.pipeline(transaction=False)

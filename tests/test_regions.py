@@ -10,8 +10,8 @@ from __future__ import annotations
 import pytest
 
 from stream.errors import ConfigError
-from stream.regions import overlaps, region_of, shape_of, within
-from stream.rules import Condition as C
+from stream.rules.regions import overlaps, region_of, shape_of, within
+from stream.tree.paths import Condition as C
 
 
 def test_merging_keeps_the_tightest_bounds_and_set_algebra():

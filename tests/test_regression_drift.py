@@ -27,21 +27,21 @@ import numpy as np
 import pytest
 from hypothesis import given, settings as hsettings, strategies as st
 
-from stream.classifier import DriftEvent
+from stream.bench.regression import friedman, friedman_drift
+from stream.classify.settings import TreeSettings
 from stream.errors import ConfigError
-from stream.regression_bench import friedman, friedman_drift
-from stream.regression_drift import (DROP, KEEP, SWAP, error_scale_update, normalised_error,
-                                     swap_bound, swap_verdict)
-from stream.regression_rules import leaf_conditions, leaf_consequents
-from stream.regression_settings import RegressionSettings
-from stream.regression_tables import (ALT, ALT_OF, CHILD_START, CREATED, DEAD, DET, ERR_N,
-                                      ERR_SQ, ERR_SUM, ES_MAD, ES_MEAN, KIND, LEAF, N_CHILDREN,
-                                      NODE_F_COLS, S_CREATED, S_DEAD, S_FREE_NODES, S_LEAVES,
-                                      S_NODES, STATUS, SWAPPED)
-from stream.regressor import TreeRegressor
-from stream.rules import node_conditions
-from stream.settings import TreeSettings
-from stream.tasks import RegressionTask
+from stream.regress.drift import (DROP, KEEP, SWAP, error_scale_update, normalised_error,
+                                  swap_bound, swap_verdict)
+from stream.regress.model import TreeRegressor
+from stream.regress.settings import RegressionSettings
+from stream.regress.tables import (ALT, ALT_OF, CHILD_START, CREATED, DEAD, DET, ERR_N,
+                                   ERR_SQ, ERR_SUM, ES_MAD, ES_MEAN, KIND, LEAF, N_CHILDREN,
+                                   NODE_F_COLS, S_CREATED, S_DEAD, S_FREE_NODES, S_LEAVES,
+                                   S_NODES, STATUS, SWAPPED)
+from stream.rules.regress import leaf_consequents
+from stream.run.tasks import RegressionTask
+from stream.tree.paths import node_conditions
+from stream.tree.upkeep import DriftEvent
 
 NAMES = ["load", "mode", "vibration"]
 KINDS = ["numeric", "category", "numeric"]
@@ -458,7 +458,7 @@ def test_rules_read_the_main_tree_and_say_where_alternates_grow():
     # every record meets the conditions of exactly the leaf the main tree routes it to
     probe = X[::37]
     routed = model.predict(probe).leaf
-    conds = {leaf: leaf_conditions(model, leaf) for leaf in main}
+    conds = {leaf: node_conditions(model, leaf) for leaf in main}
     for x, leaf in zip(probe, routed):
         assert [n for n, c in conds.items() if _meets(c, x)] == [leaf]
 
@@ -492,7 +492,8 @@ def test_memory_budget_holds_with_alternates():
 def test_a_learning_run_writes_regression_drift_events(tmp_path):
     import json
 
-    from stream.engine import LearnJob, run_learn
+    from stream.run.engine import run_learn
+    from stream.run.job import LearnJob
     X, y = _abrupt(12_000, 4, 6000)
     path = tmp_path / "plant.csv"
     lines = ["x0,x1,y"] + [f"{a!r},{b!r},{t!r}" for (a, b), t in zip(X.tolist(), y.tolist())]

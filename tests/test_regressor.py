@@ -22,19 +22,19 @@ import numpy as np
 import pytest
 from hypothesis import given, settings as hsettings, strategies as st
 
+from stream.bench.regression import (compare_with_river, friedman, friedman_drift,
+                                     river_counterpart, run_river, run_sapwood,
+                                     wide_friedman)
 from stream.errors import ConfigError, ModelFileError
-from stream.regression_bench import (compare_with_river, friedman, friedman_drift,
-                                     river_counterpart, run_river, run_sapwood, wide_friedman)
-from stream.regression_criteria import split_confident, split_merit, stats_add, stats_sub
-from stream.regression_observers import (category_best, observe, quantile_best,
-                                        quantile_set_edges)
-from stream.regression_rules import (Consequent, format_consequent, format_value,
-                                     leaf_conditions, leaf_consequent, leaf_consequents,
-                                     linear_formula)
-from stream.regression_settings import RegressionSettings
-from stream.regression_tables import (CREATED, FEATURE, KIND, LEAF, MULTIWAY, NUMERIC, Q_NEDGES,
-                                      S_NODES, SC_MEAN, SC_SD, THRESHOLD, allocate)
-from stream.regressor import TreeRegressor
+from stream.regress.criteria import split_confident, split_merit, stats_add, stats_sub
+from stream.regress.model import TreeRegressor
+from stream.regress.settings import RegressionSettings
+from stream.regress.splits import category_best, observe, quantile_best, quantile_set_edges
+from stream.regress.tables import (CREATED, FEATURE, KIND, LEAF, MULTIWAY, NUMERIC,
+                                   Q_NEDGES, S_NODES, SC_MEAN, SC_SD, THRESHOLD, allocate)
+from stream.rules.regress import (Consequent, format_consequent, format_value,
+                                  leaf_consequent, leaf_consequents, linear_formula)
+from stream.tree.paths import node_conditions
 
 
 def _mixed_stream(n: int, seed: int):
@@ -522,7 +522,7 @@ def test_rule_conditions_partition_the_inputs():
     model = TreeRegressor(NAMES, KINDS, RegressionSettings(grace_period=100))
     model.learn(X, y)
     categories = {"mode": ["idle", "cool", "defrost"]}    # codes 3, 4 shown as #3, #4
-    rules = {leaf: leaf_conditions(model, leaf, categories) for leaf in leaf_consequents(model)}
+    rules = {leaf: node_conditions(model, leaf, categories) for leaf in leaf_consequents(model)}
     assert len(rules) == model.n_leaves > 4
     probe = np.vstack([X[::40], [[np.nan, np.nan, np.nan], [0.1, 7.0, np.nan]]])
     for record, leaf in zip(probe, model.predict(probe).leaf):

@@ -23,16 +23,18 @@ import pytest
 from click.testing import CliRunner
 from hypothesis import given
 from hypothesis import strategies as st
+from operator_runs import TARGET, read_csv_rows, shared_run
 from sklearn.metrics import accuracy_score, cohen_kappa_score
 
-from operator_runs import TARGET, read_csv_rows, shared_run
-from stream.diff import diff_rules, header_of
-from stream.report import SAFETY, churn_table, load_report_data, render_report, write_report
-from stream.rules import rules_from_payload
-from stream.run_logs import read_metrics
-from stream.snapshots import SnapshotStore
-from stream.svg_plot import nice_domain, nice_ticks, thin_points
-from stream.views_cli import report as report_command
+from stream.cli.views import report as report_command
+from stream.rules.diff import diff_rules
+from stream.rules.rule import rules_from_payload
+from stream.run.snapshots import SnapshotStore
+from stream.views.report import (SAFETY, churn_table, load_report_data, render_report,
+                                 write_report)
+from stream.views.rule_sources import header_of
+from stream.views.run_logs import read_metrics
+from stream.views.svg_plot import nice_domain, nice_ticks, thin_points
 
 SVG = "{http://www.w3.org/2000/svg}"
 EVENTS = [

@@ -29,9 +29,9 @@ import zlib
 from pathlib import Path
 
 import pytest
-
 from operator_runs import shared_run
-from stream.report import load_report_data, write_report
+
+from stream.views.report import load_report_data, write_report
 
 FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
          "--disable-background-networking", "--disable-component-update", "--disable-sync"]

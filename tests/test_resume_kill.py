@@ -42,8 +42,8 @@ from river.datasets import synth
 
 from connectors.local_brokers import REDIS_SERVER, LocalRedis
 from stream.child_env import same_code_env
-from stream.rule_sources import load_rules
-from stream.saved_model import load_model
+from stream.run.saved_model import load_model
+from stream.views.rule_sources import load_rules
 
 pytestmark = pytest.mark.slow
 

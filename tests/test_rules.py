@@ -32,48 +32,21 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from river.datasets import synth
 
-import stream.tables as tables
-from stream.classifier import TreeClassifier
-from stream.cli import main
-from stream.engine import LearnJob, run_learn
-from stream.rules import (
-    Condition,
-    Rule,
-    extract_rules,
-    format_number,
-    merge_conditions,
-    render_text,
-    rule_id,
-    rules_from_payload,
-    rules_payload,
-    sort_rules,
-)
-from stream.scoring import score_sources
-from stream.settings import TreeSettings
-from stream.tables import (
-    CHILD_START,
-    CREATED,
-    DEPTH,
-    EQUALS,
-    FEATURE,
-    HITS,
-    KIND,
-    LEAF,
-    MULTIWAY,
-    N_CHILDREN,
-    NUMERIC,
-    PARENT,
-    S_ACTIVE,
-    S_CHILD_USED,
-    S_CLASSES_SEEN,
-    S_LEARNED,
-    S_LEAVES,
-    S_NODES,
-    SCORED,
-    SLOT,
-    THRESHOLD,
-    WEIGHT,
-)
+from stream.classify.model import TreeClassifier
+from stream.classify.settings import TreeSettings
+import stream.classify.tables as tables
+from stream.classify.tables import (CHILD_START, CREATED, DEPTH, EQUALS, FEATURE, HITS,
+                                    KIND, LEAF, MULTIWAY, N_CHILDREN, NUMERIC, PARENT,
+                                    S_ACTIVE, S_CHILD_USED, S_CLASSES_SEEN, S_LEARNED,
+                                    S_LEAVES, S_NODES, SCORED, SLOT, THRESHOLD, WEIGHT)
+from stream.cli.main import main
+from stream.rules.classify import extract_rules
+from stream.rules.rule import Rule, rule_id, rules_from_payload, rules_payload, sort_rules
+from stream.rules.text import format_number, render_text
+from stream.run.engine import run_learn
+from stream.run.job import LearnJob
+from stream.run.scoring import score_sources
+from stream.tree.paths import Condition, merge_conditions
 
 AGRAWAL_KEYS = ("salary", "commission", "age", "elevel", "car", "zipcode", "hvalue",
                 "hyears", "loan")

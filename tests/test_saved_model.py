@@ -30,14 +30,15 @@ import pytest
 from river.datasets import synth
 
 from connectors.sources import open_sources
-from stream.classifier import TreeClassifier
-from stream.cli import main
-from stream.engine import LearnJob, run_learn
+from stream.classify.model import TreeClassifier
+from stream.classify.settings import TreeSettings
+from stream.cli.main import main
 from stream.errors import ModelFileError
-from stream.metrics import ClassificationScore
-from stream.rules import extract_rules
-from stream.saved_model import load_model
-from stream.settings import TreeSettings
+from stream.rules.classify import extract_rules
+from stream.run.engine import run_learn
+from stream.run.job import LearnJob
+from stream.run.metrics import ClassificationScore
+from stream.run.saved_model import load_model
 
 AGRAWAL_KEYS = ("salary", "commission", "age", "elevel", "car", "zipcode", "hvalue",
                 "hyears", "loan")

@@ -16,7 +16,7 @@ import river
 
 from connectors import open_sources
 from stream.errors import ConfigError, SchemaError
-from stream.schema import Field, Schema, infer_schema, load_schema, save_schema
+from stream.run.schema import Field, Schema, infer_schema, load_schema, save_schema
 
 RIVER_DATA = os.path.join(os.path.dirname(river.__file__), "datasets")
 

@@ -27,11 +27,12 @@ import numpy as np
 import pytest
 from river.datasets import synth
 
-from stream.cli import main
-from stream.engine import LearnJob, run_learn
-from stream.rules import rule_id
-from stream.saved_model import load_model
-from stream.settings import TreeSettings
+from stream.classify.settings import TreeSettings
+from stream.cli.main import main
+from stream.rules.rule import rule_id
+from stream.run.engine import run_learn
+from stream.run.job import LearnJob
+from stream.run.saved_model import load_model
 
 AGRAWAL_KEYS = ("salary", "commission", "age", "elevel", "car", "zipcode", "hvalue",
                 "hyears", "loan")

@@ -8,11 +8,12 @@ evaluator written for the tests over the JSON condition triples, not sapwood's c
 from __future__ import annotations
 
 import pytest
-
 from operator_runs import read_csv_rows, rules_that_hold, shared_run
-from stream.rules import Condition, Rule, rules_from_payload
-from stream.simplify import simplify, tidy
-from stream.snapshots import SnapshotStore
+
+from stream.rules.rule import Rule, rules_from_payload
+from stream.rules.simplify import simplify, tidy
+from stream.run.snapshots import SnapshotStore
+from stream.tree.paths import Condition
 
 
 def make_rule(rule_id, *conditions, predict="yes", no=10.0, yes=90.0):

@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from stream.errors import ConfigError
-from stream.snapshots import SnapshotSchedule, SnapshotStore, thin_history
+from stream.run.snapshots import SnapshotSchedule, SnapshotStore, thin_history
 
 
 @given(st.integers(1, 12), st.integers(1, 400))

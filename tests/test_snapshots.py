@@ -15,10 +15,10 @@ import re
 
 import pytest
 
-import stream.atomic as atomic
-import stream.snapshots as snapshots
 from stream.errors import ConfigError, ModelFileError
-from stream.snapshots import SnapshotStore
+import stream.run.atomic as atomic
+import stream.run.snapshots as snapshots
+from stream.run.snapshots import SnapshotStore
 
 T0 = 1_700_000_000.0  # 2023-11-14T22:13:20Z
 

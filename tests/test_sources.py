@@ -11,8 +11,8 @@ import threading
 import numpy as np
 import pytest
 
-import connectors.sources as sources
 from connectors import FORMATS, Source, open_sources
+import connectors.sources as sources
 from connectors.sources import format_of, sniff_format
 from stream.errors import EXIT_INPUT, EXIT_USAGE, ConfigError, InputError, SchemaError
 

@@ -1,0 +1,48 @@
+"""Settings checks with one message template: "grace period must be a whole number >= 1,
+got 0".
+
+Every setting a user or a library caller can give is checked once, where it is taken,
+by one of these; the message names the setting, the requirement and the value.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from .errors import ConfigError
+
+
+def _fail(what: str, requirement: str, value: Any) -> ConfigError:
+    return ConfigError(f"{what} must be {requirement}, got {value!r}")
+
+
+def require_int(what: str, value: Any, minimum: int) -> int:
+    """Return ``value`` as int or raise 'X must be a whole number >= m, got v'."""
+    if isinstance(value, bool) or not isinstance(value, (int,)) or value < minimum:
+        if isinstance(value, float) and value.is_integer() and value >= minimum:
+            return int(value)
+        raise _fail(what, f"a whole number >= {minimum}", value)
+    return int(value)
+
+
+def require_float(what: str, value: Any, low: float, high: float,
+                  low_open: bool = True, high_open: bool = True) -> float:
+    """Return ``value`` as float within the interval or raise with the template."""
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = math.nan
+    left = number > low if low_open else number >= low
+    right = number < high if high_open else number <= high
+    if isinstance(value, bool) or not (left and right):
+        interval = f"{'(' if low_open else '['}{low:g}, {high:g}{')' if high_open else ']'}"
+        raise _fail(what, f"a number in {interval}", value)
+    return number
+
+
+def require_choice(what: str, value: Any, choices: dict) -> str:
+    """Return ``value`` if it names an entry of ``choices``."""
+    if value not in choices:
+        raise _fail(what, "one of " + ", ".join(sorted(choices)), value)
+    return value

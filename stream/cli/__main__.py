@@ -1,0 +1,5 @@
+"""``python -m stream.cli``: the ``sapwood`` command."""
+
+from .main import main
+
+main()

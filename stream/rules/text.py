@@ -1,0 +1,135 @@
+"""Rules as aligned text for people: a pure function with fixed decimals and a stable order."""
+
+from __future__ import annotations
+
+from typing import Sequence
+
+from stream.tree.paths import Condition
+
+from .rule import Rule
+
+
+def rule_conditions_text(rule: Rule) -> str:
+    """A rule's conditions on one line: ``door = open AND ambient_c > 27.9``; ``always``
+    when there are none."""
+    return conditions_text(rule.conditions) if rule.conditions else "always"
+
+
+def conditions_text(conditions: Sequence[Condition]) -> str:
+    """Conditions on one line, ``AND``-joined; ``(everything)`` when there are none."""
+    if not conditions:
+        return "(everything)"
+    return " AND ".join(format_condition(group) for group in _grouped(conditions))
+
+
+def format_number(value: float) -> str:
+    """Compact, fixed rendering of a threshold: up to 4 decimals, trailing zeros cut."""
+    if value == 0:
+        return "0"
+    text = f"{value:.4f}".rstrip("0").rstrip(".")
+    if text in ("0", "-0"):
+        return f"{value:.3g}"
+    return text
+
+
+def format_condition(conditions: Sequence[Condition]) -> str:
+    """One feature's merged conditions as text: ``12.5 < supply_temp <= 30.1``."""
+    name = conditions[0].feature
+    lo = next((c.value for c in conditions if c.op == ">"), None)
+    hi = next((c.value for c in conditions if c.op == "<="), None)
+    sets = [c for c in conditions if c.op in ("in", "not in")]
+    if sets and sets[0].branch:
+        c = sets[0]
+        shown = c.branch[0] if len(c.branch) == 1 else "{" + ", ".join(c.branch) + "}"
+        text = f"{name} {'=' if len(c.branch) == 1 else 'in'} {shown}"
+        text += "  (or missing, or a new value)" if c.missing else "  (or a new value)"
+        return text
+    if sets:
+        c = sets[0]
+        labels = ", ".join(c.value)
+        text = f"{name} {'=' if c.op == 'in' and len(c.value) == 1 else c.op} "
+        text += labels if c.op == "in" and len(c.value) == 1 else "{" + labels + "}"
+    elif lo is not None and hi is not None:
+        text = f"{format_number(lo)} < {name} <= {format_number(hi)}"
+    elif lo is not None:
+        text = f"{name} > {format_number(lo)}"
+    else:
+        text = f"{name} <= {format_number(hi)}"
+    if conditions[0].missing:
+        text += "  (or missing)"
+    return text
+
+
+def _grouped(conditions: Sequence[Condition]) -> list[list[Condition]]:
+    groups: dict[str, list[Condition]] = {}
+    for c in conditions:
+        groups.setdefault(c.feature, []).append(c)
+    return list(groups.values())
+
+
+def _count(value: float) -> str:
+    return f"{value:,.0f}"
+
+
+def render_text(rules: Sequence[Rule], header: dict) -> str:
+    """Rules as aligned text. ``header`` needs ``target``; ``records``, ``accuracy`` and
+    ``written_at`` are shown when present."""
+    target = header.get("target", "target")
+    lines = [f"sapwood rules for {target}"]
+    facts = []
+    if header.get("records") is not None:
+        facts.append(f"{_count(header['records'])} records learned")
+    if header.get("shown") is not None:
+        facts.append(f"the {len(rules)} rules covering the most records")
+    else:
+        facts.append(f"{len(rules)} rule" + ("s" if len(rules) != 1 else ""))
+    if header.get("accuracy") is not None:
+        facts.append(f"prequential accuracy {100 * header['accuracy']:.1f}%")
+    if header.get("rmse") is not None:
+        facts.append(f"prequential RMSE {format_number(header['rmse'])}")
+    if header.get("written_at"):
+        facts.append(str(header["written_at"]))
+    lines.append(" | ".join(facts))
+    lines.append("")
+    width = max((len(r.id) for r in rules), default=2) + 2
+    pad = " " * width
+    for r in rules:
+        groups = _grouped(r.conditions)
+        if not groups:
+            lines.append(f"{r.id:<{width}}ALWAYS")
+        for i, group in enumerate(groups):
+            lead = f"{r.id:<{width}}IF   " if i == 0 else f"{pad}AND  "
+            lines.append(lead + format_condition(group))
+        extra = []
+        if r.estimate is not None:
+            lines.append(f"{pad}THEN {target} = {r.estimate.get('shown', '?')}")
+            detail = f"coverage {100 * r.coverage:.1f}%, {_count(r.records)} records"
+            if r.estimate.get("mae") is not None:
+                extra.append(f"mean absolute error {format_number(r.estimate['mae'])} over "
+                             f"{_count(r.scored)} scored")
+        else:
+            outcome = "(no records yet)" if r.predict is None else f"{target} = {r.predict}"
+            lines.append(f"{pad}THEN {outcome}")
+            detail = (f"confidence {100 * r.confidence:.1f}%, coverage "
+                      f"{100 * r.coverage:.1f}%, {_count(r.records)} records")
+            split = " / ".join(f"{label} {_count(v)}" for label, v in r.class_counts.items()
+                               if v >= 0.5)
+            if split:
+                detail += f" ({split})"
+            if r.accuracy is not None:
+                extra.append(f"scored right {100 * r.accuracy:.1f}% of {_count(r.scored)}")
+        lines.append(f"{pad}     {detail}")
+        if r.leaf_model == "naive_bayes" and r.estimate is None:
+            extra.append("naive Bayes refines within the rule")
+        if not r.active:
+            extra.append("not growing")
+        if r.drift == "watching":
+            extra.append("drift: alternate growing")
+        elif r.drift == "replaced":
+            extra.append(f"drift: regrown at record {_count(r.replaced_at)}")
+        if extra:
+            lines.append(f"{pad}     " + "; ".join(extra))
+        lines.append("")
+    lines.append("Learned rules describe the data seen so far. They are advisory, not safety "
+                 "interlocks: defer to site safety systems, local codes and licensed practice.")
+    return "\n".join(lines) + "\n"

@@ -1,0 +1,289 @@
+"""Raw batches -> numeric arrays for the learner, with every bad value reported.
+
+Inside: the :class:`EncodedBatch` the learner consumes and the stateful :class:`Encoder`
+that assigns category and class codes in first-seen order and can be saved and restored.
+What counts as missing, a number, a time or a label is :mod:`stream.run.values`; ``inf``
+parses as a number but is refused here as "is not a finite number": no split statistic
+survives an infinite value.
+
+Limitation: a column read with another dtype in a later chunk is handled, but a
+category's code is fixed at first sight and never recycled.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from connectors.base import RawBatch, Reject
+from stream.errors import ModelFileError
+
+from .schema import Schema
+from .values import (as_array, factorize_labels, label_texts, missing_mask, parse_numbers,
+                     parse_times)
+
+
+
+_MAX_VALUE_CHARS = 200
+_STATE_FORMAT = "sapwood-encoder"
+_STATE_VERSION = 1
+
+_REASON_NUMBER = "is not a number"
+_REASON_FINITE = "is not a finite number"
+_REASON_TIME = "is not a time"
+_REASON_NO_TARGET = "has no target value"
+
+
+
+# ---------------------------------------------------------------------------------------
+# encoder
+# ---------------------------------------------------------------------------------------
+
+@dataclasses.dataclass
+class EncodedBatch:
+    """Records ready for the learner; rejected rows are already removed.
+
+    Attributes
+    ----------
+    X
+        float64 [n, F], C-contiguous, over ``schema.feature_names``; categories as codes,
+        NaN for missing.
+    y
+        int32 class codes (classification) or float64 values (regression).
+    lines
+        int64 physical line of each kept row.
+    origin
+        Where the records came from (file name or ``-``).
+    times
+        float64 epoch seconds, or None when the schema has no time field.
+    ids
+        object array of str (``""`` when missing), or None when the schema has no id field.
+    rejects
+        The source's rejects followed by one entry per bad value of this batch.
+    """
+
+    X: np.ndarray
+    y: np.ndarray
+    lines: np.ndarray
+    origin: str
+    times: np.ndarray | None
+    ids: np.ndarray | None
+    rejects: list[Reject]
+
+    def __len__(self) -> int:
+        return len(self.y)
+
+
+class _Codebook:
+    """Label -> code in first-seen order; new labels get the next code."""
+
+    def __init__(self, labels: list[str] | None = None) -> None:
+        self.labels: list[str] = []
+        self.codes: dict[str, int] = {}
+        for label in labels or []:
+            self.add(label)
+
+    def add(self, label: str) -> int:
+        code = self.codes.get(label)
+        if code is None:
+            code = self.codes[label] = len(self.labels)
+            self.labels.append(label)
+        return code
+
+    def encode(self, codes: np.ndarray, labels: list[str | None],
+               keep: np.ndarray) -> np.ndarray:
+        """Map per-row codes into ``labels`` to codebook codes (-1 missing).
+
+        New labels are added in the order their first *kept* row appears, so a rejected
+        row never creates a code.
+        """
+        lut = np.full(len(labels) + 1, -1, dtype=np.int64)
+        kept = codes[keep]
+        for unique in pd.unique(kept[kept >= 0]):
+            label = labels[unique]
+            if label is not None:
+                lut[unique] = self.add(label)
+        return lut[codes]  # -1 indexes the trailing -1
+
+
+class Encoder:
+    """Turns :class:`RawBatch` objects into :class:`EncodedBatch` objects for one schema.
+
+    Parameters
+    ----------
+    schema
+        Fields, target and task.
+    """
+
+    def __init__(self, schema: Schema) -> None:
+        self.schema = schema
+        self._books = {name: _Codebook() for name, kind
+                       in zip(schema.feature_names, schema.feature_kinds) if kind == "category"}
+        self._classes = _Codebook()
+        self._known = {field.name for field in schema.fields}
+        self.unknown_fields: dict[str, int] = {}
+
+    @property
+    def classes(self) -> list[str]:
+        """Class labels in code order (empty for regression)."""
+        return list(self._classes.labels)
+
+    @property
+    def categories(self) -> dict[str, list[str]]:
+        """Category labels in code order, per category feature."""
+        return {name: list(book.labels) for name, book in self._books.items()}
+
+    def encode(self, batch: RawBatch, scoring: bool = False) -> EncodedBatch:
+        """Encode one batch; the batch and its frame are left untouched.
+
+        With ``scoring`` the target is optional (records are predicted, not learned): a
+        missing or unreadable target gives y = -1 (classification) or NaN (regression)
+        instead of a reject.
+        """
+        schema = self.schema
+        frame = batch.frame
+        n = len(frame)
+        lines = np.asarray(batch.lines, dtype=np.int64)
+        problems: list[tuple[np.ndarray, str, str, Any]] = []
+        bad_rows = np.zeros(n, dtype=bool)
+
+        def report(mask: np.ndarray, field: str, reason: str, raw: Any) -> None:
+            nonlocal bad_rows
+            if mask.any():
+                problems.append((mask, field, reason, raw))
+                bad_rows = bad_rows | mask
+
+        def column(name: str) -> pd.Series | np.ndarray:
+            if name in frame.columns:
+                return frame[name]
+            return np.full(n, np.nan)  # a key no record of this batch carried
+
+        X = np.empty((n, len(schema.feature_names)))
+        pending: list[tuple[int, str, np.ndarray, list[str | None]]] = []
+        for j, (name, kind) in enumerate(zip(schema.feature_names, schema.feature_kinds)):
+            raw = column(name)
+            if kind == "numeric":
+                numbers, bad = parse_numbers(raw)
+                report(bad, name, _REASON_NUMBER, raw)
+                infinite = np.isinf(numbers)
+                if infinite.any():
+                    report(infinite, name, _REASON_FINITE, raw)
+                X[:, j] = numbers
+            else:
+                codes, labels = factorize_labels(raw)
+                pending.append((j, name, codes, labels))
+
+        target = schema.target
+        raw_target = column(target)
+        if schema.task == "classification":
+            target_codes, target_labels = factorize_labels(raw_target)
+            if not scoring:
+                report(target_codes < 0, target, _REASON_NO_TARGET, None)
+        else:
+            y_values, bad = parse_numbers(raw_target)
+            infinite = np.isinf(y_values)
+            if scoring:
+                y_values = np.where(infinite, np.nan, y_values)
+            else:
+                report(bad, target, _REASON_NUMBER, raw_target)
+                report(infinite, target, _REASON_FINITE, raw_target)
+                report(np.isnan(y_values) & ~bad, target, _REASON_NO_TARGET, None)
+
+        times = None
+        if schema.time_field is not None:
+            raw_time = column(schema.time_field)
+            times, bad = parse_times(raw_time)
+            report(bad, schema.time_field, _REASON_TIME, raw_time)
+
+        keep = ~bad_rows
+        for j, name, codes, labels in pending:
+            mapped = self._books[name].encode(codes, labels, keep).astype(np.float64)
+            mapped[mapped < 0] = np.nan
+            X[:, j] = mapped
+        if schema.task == "classification":
+            y = self._classes.encode(target_codes, target_labels, keep)[keep].astype(np.int32)
+        else:
+            y = y_values[keep]
+
+        ids = None
+        if schema.id_field is not None:
+            ids = label_texts(column(schema.id_field))[keep]
+
+        self._count_unknown(frame)
+        everything = not bad_rows.any()
+        return EncodedBatch(
+            X=X if everything else X[keep],
+            y=y,
+            lines=lines.copy() if everything else lines[keep],
+            origin=batch.origin,
+            times=times if times is None or everything else times[keep],
+            ids=ids,
+            rejects=list(batch.rejects) + self._rejects(batch.origin, lines, problems),
+        )
+
+    def _rejects(self, origin: str, lines: np.ndarray,
+                 problems: list[tuple[np.ndarray, str, str, Any]]) -> list[Reject]:
+        found: list[tuple[int, int, Reject]] = []
+        for order, (mask, field, reason, raw) in enumerate(problems):
+            values = None if raw is None else as_array(raw)
+            for row in np.flatnonzero(mask).tolist():
+                value = None if values is None else str(values[row])[:_MAX_VALUE_CHARS]
+                found.append((row, order, Reject(origin, int(lines[row]), field, value, reason)))
+        found.sort(key=lambda item: item[:2])
+        return [reject for _, _, reject in found]
+
+    def _count_unknown(self, frame: pd.DataFrame) -> None:
+        for name in frame.columns:
+            if name not in self._known:
+                present = int(np.count_nonzero(~missing_mask(frame[name])))
+                self.unknown_fields[name] = self.unknown_fields.get(name, 0) + present
+
+    # -- saving and restoring ----------------------------------------------------------
+
+    def state_dict(self) -> dict:
+        """Codebooks and counters as a JSON-able dict."""
+        return {
+            "format": _STATE_FORMAT,
+            "version": _STATE_VERSION,
+            "task": self.schema.task,
+            "categories": self.categories,
+            "classes": self.classes,
+            "unknown_fields": dict(self.unknown_fields),
+        }
+
+    @classmethod
+    def from_state(cls, schema: Schema, state: dict) -> "Encoder":
+        """Rebuild an encoder saved by :meth:`state_dict` for the same schema."""
+        def fail(why: str) -> ModelFileError:
+            return ModelFileError(f"saved encoder state does not fit the schema: {why}")
+
+        if not isinstance(state, dict) or state.get("format") != _STATE_FORMAT:
+            raise fail("it is not an encoder state")
+        if state.get("version") != _STATE_VERSION:
+            raise fail(f"version {state.get('version')!r}, expected {_STATE_VERSION}")
+        if state.get("task") != schema.task:
+            raise fail(f"task {state.get('task')!r}, the schema's is {schema.task!r}")
+        encoder = cls(schema)
+        categories = state.get("categories")
+        if not isinstance(categories, dict) or set(categories) != set(encoder._books):
+            expected = ", ".join(sorted(encoder._books)) or "none"
+            raise fail(f"category fields differ (expected {expected})")
+        for name, labels in categories.items():
+            encoder._books[name] = _Codebook(_label_list(labels, fail, f"field {name!r}"))
+        encoder._classes = _Codebook(_label_list(state.get("classes"), fail, "classes"))
+        unknown = state.get("unknown_fields", {})
+        if not isinstance(unknown, dict):
+            raise fail("unknown_fields is not an object")
+        encoder.unknown_fields = {str(k): int(v) for k, v in unknown.items()}
+        return encoder
+
+
+def _label_list(labels: Any, fail, what: str) -> list[str]:
+    if not isinstance(labels, list) or not all(isinstance(x, str) for x in labels):
+        raise fail(f"{what} is not a list of labels")
+    if len(set(labels)) != len(labels):
+        raise fail(f"{what} lists a label twice")
+    return labels

@@ -1,0 +1,354 @@
+"""A learning run: source -> encode -> score then learn -> metrics, snapshots, summary.
+
+:class:`LearnRun` carries out a :class:`~stream.run.job.LearnJob` and returns the summary
+(also written as JSON when asked); :func:`run_learn` is the one-call form. The clock is
+passed in, so tests can run on a fake one. Each record is scored before it is learned;
+batches are cut at metric-log and snapshot boundaries so that every logged value and
+every snapshot is taken exactly at its record count, whatever the batch size. The
+schema, when not declared, is inferred from the first ``INFER_ROWS`` records, whatever
+the batch size (in follow mode from fewer if the file holds fewer when the reader first
+catches up).
+
+The run delegates by concern: where records come from (:mod:`stream.run.reading`), where
+results go (:mod:`stream.run.outputs`), checkpoint and resume (:mod:`stream.run.resume`)
+and the summary (:mod:`stream.run.summary`). Checkpoints are written between fully
+learned batches; only after one is durable is the source told to ``commit`` it (a broker
+acknowledges then). A run whose checkpoint exists resumes from it: state restored,
+outputs cut back to their lengths at the checkpoint, later snapshots removed, the source
+sought to the position. Results then equal an uninterrupted run's.
+
+SIGINT and SIGTERM (when checkpointing or following): the batch being learned is
+finished, a checkpoint written, the summary written, and the run returns normally (the
+CLI exits 0). A second signal interrupts at once.
+"""
+
+from __future__ import annotations
+
+import json
+import signal
+import sys
+import threading
+import time
+from typing import Callable, TextIO
+
+import numpy as np
+
+from connectors.base import RawBatch
+from connectors.follow import FollowControl, FollowStopped
+from stream.errors import ConfigError, RecordError
+
+from .atomic import write_atomic
+from .encoding import EncodedBatch, Encoder
+from .job import LearnJob
+from .outputs import RunOutputs, json_default
+from .reading import held_enough, infer_run_schema, open_run_source
+from .resume import RunCheckpoint
+from .saved_model import save_model
+from .schema import Schema, load_schema
+from .summary import rules_header, run_summary, tree_facts
+from .tasks import TASKS, warm_up
+
+
+class LearnRun:
+    """State of one learning run; :meth:`run` drives it to the end of the stream.
+
+    ``warn`` receives messages for the operator (a damaged checkpoint fallen back from);
+    stderr by default.
+    """
+
+    def __init__(self, job: LearnJob, clock: Callable[[], float] = time.perf_counter,
+                 wall: Callable[[], float] = time.time, stdout: TextIO | None = None,
+                 progress: Callable[[dict], None] | None = None,
+                 warn: Callable[[str], None] | None = None) -> None:
+        self.job = job
+        self.clock = clock
+        self.wall = wall
+        self.progress = progress
+        self.warn = warn or (lambda text: print(f"sapwood: warning: {text}",
+                                                file=sys.stderr, flush=True))
+        self.schema: Schema | None = load_schema(job.schema_path) if job.schema_path else None
+        if self.schema is not None and self.schema.target != job.target:
+            raise ConfigError(f"the schema's target is {self.schema.target!r} but the "
+                              f"target asked for is {job.target!r}")
+        self.encoder: Encoder | None = None
+        self.task = None
+        self.stop = threading.Event()
+        self.stopped: str | None = None
+        self.position: dict | None = None
+        self.records = 0            # records read: learned, waiting or quarantined
+        self.records_seen = 0       # ``records`` when the last batch was accounted for
+        self.last_time: float | None = None
+        self.prior_seconds = 0.0
+        self.resumes = 0
+        self.resumed_at: int | None = None
+        self.saved = False
+        self.started = self.finished = self.startup_seconds = 0.0
+        self.source = None
+        self.checkpoint = RunCheckpoint(job, self.warn) if job.checkpoint_path else None
+        resumed = self.checkpoint.resumed_outputs() if self.checkpoint else None
+        self.outputs = RunOutputs(job, stdout or sys.stdout, clock, wall, resumed)
+        self.delayed = None
+        if job.labels:
+            from .delayed_labels import DelayedLabels
+
+            self.delayed = DelayedLabels(self)
+        if resumed is not None:
+            self.checkpoint.restore(self)
+            self.records_seen = self.records
+        elif self.schema is not None:
+            self._start(self.schema)
+
+    # ------------------------------------------------------------------ setup
+    def _start(self, schema: Schema) -> None:
+        job = self.job
+        self.schema = schema
+        self.encoder = Encoder(schema)
+        settings = job.learner_settings(schema.task)
+        self.task = TASKS[schema.task].create(schema, settings, job.window, job.fading,
+                                              job.metrics_every)
+
+    @property
+    def model(self):
+        """The learner (a TreeClassifier or TreeRegressor), None before the schema."""
+        return self.task.model if self.task is not None else None
+
+    @property
+    def quarantine(self):
+        """Where rejected records go (:class:`~stream.run.outputs.QuarantineFile`)."""
+        return self.outputs.quarantine
+
+    # ------------------------------------------------------------------ the run
+    def run(self) -> dict:
+        """Learn the stream to its end (or until stopped); returns the summary."""
+        job = self.job
+        warm = self.clock()
+        warm_up()
+        self.startup_seconds = self.clock() - warm
+        self.started = self.clock()
+        if self.checkpoint is not None:
+            self.checkpoint.last_at = self.started
+        follow = FollowControl(job.poll_seconds, job.idle_exit, self.stop,
+                               on_idle=self._on_idle) if job.follow else None
+        self.source = open_run_source(job, follow, self.checkpoint.resumed_position()
+                                      if self.checkpoint else None)
+        if self.delayed is not None:
+            from .reading import batch_rows_for
+
+            self.delayed.open(batch_rows_for(job))
+        self._pending: list[RawBatch] = []
+        handlers = self._catch_signals() if job.checkpoint_path or job.follow else {}
+        try:
+            try:
+                self._read_all()
+            except FollowStopped as exc:
+                self.stopped = self.stopped or exc.reason
+            if self.stopped is None and self.delayed is not None:
+                self.delayed.finish()
+                if self.checkpoint is None:
+                    self.delayed.commit()   # nothing durable to wait for
+            self.finished = self.clock()
+            if self.stopped is None and self.outputs.snapshots is not None \
+                    and self.task is not None \
+                    and self.outputs.last_snapshot_records != self.task.records_learned:
+                self._snapshot()
+            if self.checkpoint is not None and self.task is not None:
+                self.checkpoint.write(self)
+        finally:
+            for signum, handler in handlers.items():
+                signal.signal(signum, handler)
+            self.source.close()
+            if self.delayed is not None:
+                self.delayed.close()
+            self.outputs.close()
+        if job.save_path and self.task is not None:
+            self.save(job.save_path)
+        summary = self.summary()
+        if job.summary_path:
+            write_atomic(job.summary_path, json.dumps(summary, indent=2,
+                                                      default=json_default) + "\n")
+        return summary
+
+    def _read_all(self) -> None:
+        """Every batch of the source, through schema inference, learning and checkpoints."""
+        self._pending = []
+        try:
+            for batch in self.source.batches():
+                if self.task is None:
+                    self._pending.append(batch)
+                    if held_enough(self._pending):
+                        self._learn_pending()
+                else:
+                    self._consume(batch)
+                    self._after_batch(batch)
+                if self.stop.is_set():
+                    break
+        finally:
+            # read but not yet learned (a stop or the end came during inference)
+            if self._pending and sys.exc_info()[0] in (None, FollowStopped):
+                self._learn_pending()
+
+    def _learn_pending(self) -> None:
+        """Infer the schema from the batches held back, then learn them."""
+        pending, self._pending = self._pending, []
+        self._start(infer_run_schema(pending, self.job, self.delayed is not None))
+        for held in pending:
+            self._consume(held)
+            self._after_batch(held)
+
+    def _on_idle(self) -> None:
+        """A followed file has no new line for now (called from inside the source's
+        iteration, between two batches): a slow feed is not held back until
+        ``INFER_ROWS`` records have come, and a checkpoint due by time is written."""
+        if self.task is None:
+            if self._pending:
+                self._learn_pending()
+            return
+        if self.checkpoint is not None and self.checkpoint.due_while_idle(self.clock()):
+            self.checkpoint.write(self)
+
+    def _after_batch(self, batch: RawBatch) -> None:
+        """Remember where the source stands; checkpoint or acknowledge when due."""
+        if batch.position is not None:
+            self.position = batch.position
+        grown = self.records - self.records_seen
+        self.records_seen = self.records
+        if self.checkpoint is None:
+            if self.position is not None and hasattr(self.source, "commit"):
+                self.source.commit(self.position)  # nothing durable to wait for
+            if self.delayed is not None:
+                self.delayed.commit()
+            return
+        self.checkpoint.grown(grown)
+        if self.checkpoint.due(self.records, self.clock(),
+                               getattr(self.source, "max_uncommitted", None)):
+            self.checkpoint.write(self)
+
+    def _consume(self, raw: RawBatch) -> None:
+        batch = self.encode(raw, labels_optional=self.delayed is not None)
+        if self.delayed is not None:
+            self.delayed.consume(batch)
+        else:
+            self.learn_stretch(batch)
+        if self.progress is not None:
+            self.progress(self._progress_facts())
+
+    # ------------------------------------------------------------------ learning
+    def encode(self, raw: RawBatch, labels_optional: bool = False,
+               count: bool = True) -> EncodedBatch:
+        """Encode a raw batch; rejects go to quarantine (or stop a strict run).
+        ``labels_optional`` keeps records without a target (delayed labels)."""
+        batch = self.encoder.encode(raw, scoring=labels_optional)
+        if batch.rejects and self.job.strict:
+            first = min(batch.rejects, key=lambda r: (r.line, r.field or ""))
+            raise RecordError(first.message() + " (strict mode stops here)")
+        quarantine = self.outputs.quarantine
+        before = quarantine.count
+        quarantine.write(sorted(batch.rejects, key=lambda r: (r.line, r.field or "")))
+        if count:
+            self.records += len(batch) + quarantine.count - before
+        return batch
+
+    def emit_predictions(self, batch: EncodedBatch, part: slice, scored) -> None:
+        """Write the predictions of ``batch[part]`` (delayed labels: at arrival)."""
+        if self.outputs.predictions is not None:
+            self.outputs.write_predictions(batch, part,
+                                           self.task.prediction_columns(scored, self.encoder))
+
+    def learn_stretch(self, batch: EncodedBatch, arrival=None) -> None:
+        """Score then learn every record of ``batch`` (all labelled), in order.
+
+        Batches are cut at metric-log and snapshot boundaries. ``arrival``: the
+        predictions made when the records arrived (delayed labels), scored instead of
+        the learner's own; predictions are then not written again.
+        """
+        start = 0
+        n = len(batch)
+        task, outputs = self.task, self.outputs
+        while start < n:
+            stop = min(n, start + self._until_boundary())
+            part = slice(start, stop)
+            learned_before = task.records_learned
+            scored = task.learn(batch.X[part], batch.y[part], self.encoder)
+            self._note_time(batch.times, stop - 1)
+            outputs.write_events(task.take_events(), batch, start - learned_before,
+                                 self.model, self.encoder.categories,
+                                 task.settings.detector)
+            judged = scored if arrival is None else arrival.part(part)
+            rows = task.update_score(batch.y[part], judged, self.encoder)
+            if arrival is None:
+                self.emit_predictions(batch, part, scored)
+            for row in rows:
+                outputs.log_metrics(row, self.model, self.last_time)
+            if outputs.snapshot_due(task.records_learned):
+                self._snapshot()
+            start = stop
+
+    def _note_time(self, times: np.ndarray | None, index: int) -> None:
+        """Remember the latest record time seen (the data's own clock), if any."""
+        if times is not None and index >= 0 and np.isfinite(times[index]):
+            self.last_time = float(times[index])
+
+    def _until_boundary(self) -> int:
+        learned = self.task.records_learned
+        gap = self.job.metrics_every - learned % self.job.metrics_every
+        to_snapshot = self.outputs.records_to_boundary(learned)
+        return min(gap, to_snapshot) if to_snapshot else gap
+
+    # ------------------------------------------------------------------ stopping
+    def _catch_signals(self) -> dict:
+        """SIGINT/SIGTERM ask the run to stop after the current batch (main thread only)."""
+        if threading.current_thread() is not threading.main_thread():
+            return {}
+        previous = {}
+        for signum in (signal.SIGINT, signal.SIGTERM):
+            previous[signum] = signal.signal(signum, self._on_signal)
+        return previous
+
+    def _on_signal(self, signum, frame) -> None:
+        if self.stop.is_set():
+            raise KeyboardInterrupt  # a second signal: stop now
+        self.stopped = signal.Signals(signum).name
+        self.stop.set()
+
+    # ------------------------------------------------------------------ results
+    def header(self) -> dict:
+        """Facts that head a rule listing or snapshot."""
+        return rules_header(self)
+
+    def rules(self):
+        return self.task.rules(self.encoder.categories)
+
+    def _snapshot(self) -> None:
+        rules = self.rules()
+        header = self.header()
+        result = self.task.result(self.encoder)
+        m = self.model
+        headline = {**self.task.headline(result), "rules": len(rules),
+                    "leaves": m.n_leaves, "depth": m.depth}
+        self.outputs.write_snapshot(rules, header, result, headline, tree_facts(m),
+                                    self.task.records_learned)
+
+    def _progress_facts(self) -> dict:
+        elapsed = max(self.clock() - self.started, 1e-9)
+        facts = {"records": self.records, "quarantined": self.outputs.quarantine.count,
+                 "seconds": elapsed, "rate": self.records / elapsed}
+        bytes_read = getattr(self.source, "bytes_read", None)
+        if callable(bytes_read):
+            facts["bytes_read"] = bytes_read()
+        return facts
+
+    def save(self, path: str) -> None:
+        """Write the learner, encoder, schema and metrics to a model file."""
+        save_model(path, self.schema, self.encoder, self.task, {
+            "records": self.records, "quarantined": self.outputs.quarantine.count,
+            "target": self.job.target})
+        self.saved = True
+
+    def summary(self) -> dict:
+        """The run's summary (the contract other tools rely on, plus details)."""
+        return run_summary(self)
+
+
+def run_learn(job: LearnJob, **kwargs) -> dict:
+    """Carry out ``job``; returns the summary. See :class:`LearnRun` for the keywords."""
+    return LearnRun(job, **kwargs).run()

@@ -1,0 +1,127 @@
+"""What a learning run reads, how it learns and where its outputs go: :class:`LearnJob`.
+
+Every rule a library caller can break is checked here, once, with the settings message
+template; the command line keeps only rules about which flags were typed.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from typing import Any
+
+from stream.checks import require_float, require_int
+from stream.classify.settings import TreeSettings
+from stream.errors import ConfigError
+from stream.regress.settings import RegressionSettings
+
+DEFAULT_QUARANTINE = "sapwood-quarantine.jsonl"
+DEFAULT_CHECKPOINT_EVERY = 100_000
+DEFAULT_CHECKPOINT_SECONDS = 60.0
+DEFAULT_LABEL_WINDOW = 10_000
+INFER_ROWS = 10_000
+"""Records the schema is inferred from when it is not declared."""
+
+
+@dataclasses.dataclass
+class LearnJob:
+    """What a learning run reads, how it learns and where its outputs go.
+
+    ``settings`` fixes the learner's settings outright (a :class:`TreeSettings` for a
+    class target, a :class:`RegressionSettings` for a numeric one); otherwise
+    ``options`` (the user's choices by name, e.g. ``{"grace_period": 100}``) are applied
+    to the defaults of whichever task the target calls for. Paths left as None are not
+    written, except the quarantine: rejected records always go to a file
+    (``DEFAULT_QUARANTINE`` unless named), created at the first reject.
+
+    Durability and live feeds: ``checkpoint_path`` with ``checkpoint_every`` (records,
+    0 for none) and ``checkpoint_seconds`` (0 for none); ``follow`` reads the last
+    source on as it grows (``poll_seconds`` between checks, ``idle_exit`` ends the run
+    after that many quiet seconds). With a checkpoint, a fresh run empties an existing
+    quarantine file (otherwise appended to), as an attempt that died before its first
+    checkpoint may have written to it. Delayed labels: ``labels`` (sources of id, target
+    and time rows), joined within ``label_window`` records and, if set,
+    ``label_seconds`` of data time; ``id_field`` declares the id field (see
+    :mod:`stream.delayed_labels`).
+    """
+
+    sources: list[str]
+    target: str
+    fmt: str | None = None
+    schema_path: str | None = None
+    declared: dict[str, str] = dataclasses.field(default_factory=dict)
+    task: str | None = None
+    settings: TreeSettings | RegressionSettings | None = None
+    options: dict[str, Any] = dataclasses.field(default_factory=dict)
+    summary_path: str | None = None
+    save_path: str | None = None
+    snapshot_dir: str | None = None
+    snapshot_every: int = 0
+    snapshot_seconds: float = 0.0
+    snapshot_keep: int | None = None
+    snapshot_history: bool = False
+    metrics_path: str | None = None
+    metrics_every: int = 1000
+    quarantine_path: str | None = None
+    strict: bool = False
+    predictions_path: str | None = None
+    events_path: str | None = None
+    window: int = 1000
+    fading: float = 0.999
+    batch_rows: int = 65536
+    checkpoint_path: str | None = None
+    checkpoint_every: int = DEFAULT_CHECKPOINT_EVERY
+    checkpoint_seconds: float = DEFAULT_CHECKPOINT_SECONDS
+    follow: bool = False
+    poll_seconds: float = 0.5
+    idle_exit: float | None = None
+    labels: list[str] = dataclasses.field(default_factory=list)
+    label_window: int = DEFAULT_LABEL_WINDOW
+    label_seconds: float = 0.0
+    id_field: str | None = None
+
+    def __post_init__(self) -> None:
+        require_int("checkpoint interval", self.checkpoint_every, 0)
+        require_float("checkpoint interval in seconds", self.checkpoint_seconds, 0.0,
+                      math.inf, low_open=False)
+        require_float("poll interval in seconds", self.poll_seconds, 0.0, math.inf)
+        if self.idle_exit is not None:
+            require_float("idle exit in seconds", self.idle_exit, 0.0, math.inf,
+                          low_open=False)
+        if self.idle_exit is not None and not self.follow:
+            raise ConfigError("an idle exit needs follow mode (--follow): a run over files "
+                              "ends at their end anyway")
+        require_int("batch rows", self.batch_rows, 1)
+        require_int("label window", self.label_window, 1)
+        require_float("label window in seconds", self.label_seconds, 0.0, math.inf,
+                      low_open=False)
+        self.labels = list(self.labels)
+        if self.id_field is not None:
+            kind = self.declared.get(self.id_field, "id")
+            if kind != "id":
+                raise ConfigError(f"--id-field {self.id_field!r} is also declared "
+                                  f"{kind!r}; a field has one kind")
+            self.declared = {**self.declared, self.id_field: "id"}
+        require_int("snapshot interval", self.snapshot_every, 0)
+        require_float("snapshot interval in seconds", self.snapshot_seconds, 0.0, math.inf,
+                      low_open=False)
+        require_int("metrics interval", self.metrics_every, 1)
+        require_int("window", self.window, 1)
+        if (self.snapshot_every or self.snapshot_seconds) and not self.snapshot_dir:
+            raise ConfigError("a snapshot interval needs a snapshot directory")
+
+    def learner_settings(self, task: str):
+        """The settings the learner of ``task`` runs with."""
+        from .tasks import classifier_settings, regressor_settings
+
+        if self.settings is not None:
+            wanted = TreeSettings if task == "classification" else RegressionSettings
+            if not isinstance(self.settings, wanted):
+                raise ConfigError(f"the target calls for {task} but the settings given are "
+                                  f"{type(self.settings).__name__}")
+            return self.settings
+        if task == "classification":
+            return classifier_settings(self.options)
+        return regressor_settings(self.options)
+
+

@@ -1,0 +1,76 @@
+"""Read-only views of a tree's main part, shared by the classifier and the regressor,
+and the check of the feature arguments both constructors take.
+
+Both learners keep their nodes in tables with the node layout of
+:mod:`stream.node_layout`; :class:`MainTreeViews` reads them. A subclass holds ``tables_``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from stream.errors import ConfigError
+
+from .kernel import tree_shape
+from .layout import CHILD_START, KIND, LEAF, N_CHILDREN, S_ACTIVE, S_LEARNED, S_ROOT
+
+
+def check_features(feature_names: list[str], feature_kinds: list[str]) -> None:
+    """:class:`ConfigError` unless there is at least one feature and each has a kind,
+    ``"numeric"`` or ``"category"``."""
+    if len(feature_names) != len(feature_kinds):
+        raise ConfigError("feature names and kinds must have the same length, got "
+                          f"{len(feature_names)} and {len(feature_kinds)}")
+    bad = [k for k in feature_kinds if k not in ("numeric", "category")]
+    if bad:
+        raise ConfigError(f"feature kind must be 'numeric' or 'category', got {bad[0]!r}")
+    if not feature_names:
+        raise ConfigError("a tree needs at least one feature, got none")
+
+
+class MainTreeViews:
+    """Root, nodes, size and depth of the main tree (alternates not included)."""
+
+    tables_: tuple
+
+    @property
+    def root(self) -> int:
+        """Node id of the main tree's root."""
+        return int(self.tables_.state[S_ROOT])
+
+    def main_nodes(self) -> np.ndarray:
+        """Ids of the main tree's nodes, parents before children."""
+        t = self.tables_
+        out, stack = [], [self.root]
+        while stack:
+            n = stack.pop()
+            out.append(n)
+            if t.node_i[n, KIND] != LEAF:
+                start, count = t.node_i[n, CHILD_START], t.node_i[n, N_CHILDREN]
+                stack.extend(int(c) for c in t.child_table[start:start + count][::-1]
+                             if c >= 0)
+        return np.array(out, np.int64)
+
+    @property
+    def n_nodes(self) -> int:
+        """Nodes of the main tree."""
+        return int(tree_shape(self.tables_)[0])
+
+    @property
+    def n_leaves(self) -> int:
+        """Leaves of the main tree."""
+        return int(tree_shape(self.tables_)[1])
+
+    @property
+    def n_active_leaves(self) -> int:
+        """Leaves holding statistics (alternate subtrees' included)."""
+        return int(self.tables_.state[S_ACTIVE])
+
+    @property
+    def depth(self) -> int:
+        """Edges on the longest root-to-leaf path of the main tree (0 for a lone root)."""
+        return int(tree_shape(self.tables_)[2])
+
+    @property
+    def records_learned(self) -> int:
+        return int(self.tables_.state[S_LEARNED])
