@@ -2,7 +2,7 @@
 
 A source turns bytes into :class:`RawBatch` objects: a pandas frame of records as read
 (no schema applied yet) plus where each row came from, and the rows that could not even
-be split into fields. Parsing against the schema happens later, in ``stream.encoding``.
+be split into fields. Parsing against the schema happens later, in ``stream.run.encoding``.
 """
 
 from __future__ import annotations

@@ -29,7 +29,7 @@ from .common import Bench, Column, SuiteResult, fmt_count, fmt_ratio, register
 from .end_to_end import learn_child, warm_child, write_sea_csv
 
 CHECKPOINT_EVERY = 10_000
-"""Records between checkpoints in the rows that checkpoint (the issue's setting)."""
+"""Records between checkpoints in the rows that checkpoint (a common operating choice)."""
 
 MQTT_RECORDS = 100_000
 """At most this many messages go through the MQTT broker (publishing them takes a

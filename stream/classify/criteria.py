@@ -11,7 +11,7 @@ split_merit(criterion, pre, post, n_branches, min_branch_fraction)
     two branches hold more than ``min_branch_fraction`` of the weight.
 
 Distributions are float64 arrays of class weights; ``post`` is a 2-D array, one row per
-branch. Criterion ids come from :data:`stream.settings.CRITERIA`.
+branch. Criterion ids come from :data:`stream.classify.settings.CRITERIA`.
 """
 
 from __future__ import annotations

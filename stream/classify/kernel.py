@@ -7,12 +7,12 @@ bound (Domingos & Hulten, KDD 2000). Batches only amortise the call overhead.
 
 :func:`learn_batch` stops early, returning the index of the first record it did not
 handle, when a table has no room for what that record might need; the caller grows
-the tables (:mod:`stream.tables`) and calls again from that index.
+the tables (:mod:`stream.classify.tables`) and calls again from that index.
 
 Functions on the per-record path take the individual tables they touch; rare operations
 (splits, activation, the memory budget) take the whole :class:`ClassifierTables` ``t``.
 What the regression tree does alike with its nodes (routing through a branch, the birth
-and death of nodes, swapping alternates in) is in :mod:`stream.node_kernel`.
+and death of nodes, swapping alternates in) is in :mod:`stream.tree.kernel`.
 """
 
 from __future__ import annotations
@@ -598,7 +598,7 @@ def react(t, n: int, alarm: bool, before: float, record: int) -> int:
         t.state[S_ALARMS] += 1
         if t.cfg_i[C_DETECTOR] == ADWIN:
             # ADWIN has cut its window to the part after the change: compare its mean
-            # with the whole window's before (as MOA's adaptive tree does)
+            # with the whole window's before (Bifet & Gavalda 2009: the detector's estimate before and after the change)
             after = adwin_mean(t.adwin_state, d)
             rose = after > before
         else:

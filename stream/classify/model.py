@@ -1,7 +1,7 @@
 """TreeClassifier: the Python face of the compiled Hoeffding tree.
 
 >>> import numpy as np
->>> from stream.classifier import TreeClassifier
+>>> from stream.classify.model import TreeClassifier
 >>> X = np.array([[0.1], [0.9], [0.2], [0.8]])
 >>> y = np.array([0, 1, 0, 1], dtype=np.int32)
 >>> model = TreeClassifier(["pressure"], ["numeric"])
@@ -46,7 +46,7 @@ class TreeClassifier(TableUpkeep):
         ``"numeric"`` or ``"category"`` per column; category values arrive as integer
         codes (0, 1, 2, ...) stored as floats. NaN is a missing value everywhere.
     settings
-        How the tree grows; :class:`stream.settings.TreeSettings` defaults if omitted.
+        How the tree grows; :class:`stream.classify.settings.TreeSettings` defaults if omitted.
     """
 
     _ops = TableOps(capacities, grow, has_room, worst_case, leaf_cap)

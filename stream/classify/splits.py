@@ -4,7 +4,7 @@ Gaussian observer (numeric features)
     Per class a weighted Welford mean/variance plus min and max. Candidate thresholds are
     evenly spaced between the overall min and max; the class weights on each side are
     estimated from each class's normal CDF. These are the estimators of the Hoeffding tree
-    literature (as in MOA and river); the same statistics feed naive Bayes.
+    literature (Domingos & Hulten 2000; Kirkby 2007; river does the same); the same statistics feed naive Bayes.
 Histogram observer (numeric features, optional)
     Per leaf, bin edges are set at quantiles of the first values it sees (so skewed sensors
     get fine bins where the data are), then exact class counts per bin. Candidate thresholds
@@ -13,7 +13,7 @@ Category observer
     Class weights per category code: one multiway candidate (a branch per code) and one
     ``x == code`` candidate per code.
 
-Functions take the statistics table they work on (layouts in :mod:`stream.tables`), the
+Functions take the statistics table they work on (layouts in :mod:`stream.classify.tables`), the
 slot ``s`` and the feature's index ``j`` among features of its kind.
 """
 

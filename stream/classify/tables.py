@@ -6,7 +6,7 @@ state. When a table is full a kernel returns to Python, which enlarges it (:func
 and calls the kernel again from the same record, so results never depend on capacities
 or batch sizes. Columns of one concept share a table: a record touches few arrays, which
 keeps the compiled loop free of per-array bookkeeping. The node columns, counters, events
-and ``fmap`` the regressor shares are defined in :mod:`stream.node_layout`.
+and ``fmap`` the regressor shares are defined in :mod:`stream.tree.layout`.
 
 Nodes (capacity N; ids 0..n_nodes-1; the root is 0)
     node_i  int64[N, 14] columns KIND (0 leaf, 1 numeric ``x <= threshold`` -> child 0,
@@ -45,7 +45,7 @@ Leaf statistics (capacity S slots; only active leaves hold one)
     free_slots  int64[S]         stack of free slot ids (the histogram tables have S = 0
                                  rows unless the histogram observer is chosen)
 
-Drift (one detector row per live node; see :mod:`stream.drift`)
+Drift (one detector row per live node; see :mod:`stream.tree.drift`)
     adwin_buckets, adwin_counts, adwin_state   ADWIN tables (zero rows unless chosen)
     ph_state                                   Page-Hinkley table (zero rows unless chosen)
     free_dets   int64[D]   stack of free detector rows
@@ -56,7 +56,7 @@ Drift (one detector row per live node; see :mod:`stream.drift`)
                              detector cut its window; swap/drop: main and alternate)
 
 Other
-    state   int64[32]  counters, indices S_* (:mod:`stream.node_layout`; S_CLASSES_SEEN
+    state   int64[32]  counters, indices S_* (:mod:`stream.tree.layout`; S_CLASSES_SEEN
                        and S_PRUNED below)
     cfg_i, cfg_f       settings, indices C_* and F_* below
     fmap    int64[F, 3]  per feature: FM_KIND (0 numeric, 1 category), FM_LOCAL (index
@@ -96,7 +96,7 @@ GAUSS_COLS = 7
 # hist_meta last axis
 H_READY, H_NEDGES, H_NBUF = range(3)
 
-# state indices of the classifier's own (the others: stream.node_layout)
+# state indices of the classifier's own (the others: stream.tree.layout)
 S_CLASSES_SEEN = 5   # 1 + highest class code learned so far
 S_PRUNED = 8         # split attempts where "no split" won
 

@@ -2,8 +2,8 @@
 
 Each is a click command object; :mod:`stream.cli` registers them
 (``cli.add_command(diff)`` and so on). Like the rest of the CLI they are a thin layer:
-the work is done in :mod:`stream.diff`, :mod:`stream.markdown`, :mod:`stream.simplify`,
-:mod:`stream.explain`, :mod:`stream.live_view` and :mod:`stream.report`. Errors are
+the work is done in :mod:`stream.rules.diff`, :mod:`stream.rules.markdown`, :mod:`stream.rules.simplify`,
+:mod:`stream.views.explain`, :mod:`stream.views.live_view` and :mod:`stream.views.report`. Errors are
 :mod:`stream.errors` exceptions; ``stream.cli.main`` maps them to exit codes.
 """
 

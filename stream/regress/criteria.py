@@ -17,7 +17,7 @@ split_confident(best, second, n, delta, tau)
     for a range of 1 (the ratio lies in [0, 1]), or when eps < tau (a tie).
 
 Statistics are float64 arrays whose last axis is (count, mean, M2); indices ST_* of
-:mod:`stream.regression_tables`.
+:mod:`stream.regress.tables`.
 """
 
 from __future__ import annotations

@@ -3,8 +3,8 @@ test that swaps an alternate subtree in or drops it.
 
 The error a node watches
     Every node on a record's path (in the main tree and in alternate subtrees alike)
-    feeds its detector (:mod:`stream.drift`; the feeding is written out in the record
-    loop of :mod:`stream.regressor_kernel`) the absolute error of the prediction of the
+    feeds its detector (:mod:`stream.tree.drift`; the feeding is written out in the record
+    loop of :mod:`stream.regress.kernel`) the absolute error of the prediction of the
     leaf the record reached in that node's tree, normalised into [0, 1]:
 
         e = min(1, |y - y_hat| / (3 D)),
@@ -42,7 +42,7 @@ The swap test
         m_node - m_alt > sqrt(2 ln(2 / alpha) (s_node^2 / n_node + s_alt^2 / n_alt)),
 
     and is dropped when m_alt - m_node exceeds the same bound. This is Bifet &
-    Gavalda's test (IDA 2009; :func:`stream.classifier_kernel.react`) with each side's
+    Gavalda's test (IDA 2009; :func:`stream.classify.kernel.react`) with each side's
     own sample variance in place of the Bernoulli variance p (1 - p) they share: for
     0/1 errors of equal rates it is their formula exactly. Separate variances, as in
     Welch's test for two means, because a fresh alternate and an old subtree err with

@@ -25,7 +25,7 @@ Leaves keep updating their target statistics and linear model when inactive.
 
 Drift (unless the detector is ``off``)
     Every node on the record's path feeds its detector the normalised absolute error of
-    the leaf's own prediction (:mod:`stream.regression_drift`) before the leaf learns;
+    the leaf's own prediction (:mod:`stream.regress.drift`) before the leaf learns;
     alternates growing beside nodes on the path then score and learn the record in
     their own subtrees, watching their own nodes alike (:func:`learn_watched`). While
     alternates grow on a record's path, the prediction returned is the main leaf's and
@@ -39,7 +39,7 @@ Drift (unless the detector is ``off``)
 
 :func:`learn_batch` stops early, returning the index of the first record it did not
 handle, when a table has no room for what that record might need; the caller grows the
-tables (:mod:`stream.regression_tables`) and calls again from that index.
+tables (:mod:`stream.regress.tables`) and calls again from that index.
 
 Functions on the per-record path take the individual tables they touch and are called
 once per record, never per feature or per tree level: every call that passes arrays

@@ -1,7 +1,7 @@
 """TreeRegressor: the Python face of the compiled Hoeffding regression tree.
 
 >>> import numpy as np
->>> from stream.regressor import RegressionSettings, TreeRegressor
+>>> from stream.regress.model import RegressionSettings, TreeRegressor
 >>> X = np.array([[0.1], [0.9], [0.2], [0.8]])
 >>> y = np.array([1.0, 3.0, 1.0, 3.0])
 >>> model = TreeRegressor(["pressure"], ["numeric"], RegressionSettings(leaf_model="mean"))
@@ -46,7 +46,7 @@ class TreeRegressor(TableUpkeep):
         ``"numeric"`` or ``"category"`` per column; category values arrive as integer
         codes (0, 1, 2, ...) stored as floats. NaN is a missing value everywhere.
     settings
-        How the tree grows; :class:`stream.regression_settings.RegressionSettings`
+        How the tree grows; :class:`stream.regress.settings.RegressionSettings`
         defaults if omitted.
     """
 

@@ -1,21 +1,21 @@
 """Nodes of the regression tree: their birth, observer slots, detectors, and the life of
 alternate subtrees (started, swapped in, dropped). Their death and recycling, shared with
-the classifier, are in :mod:`stream.node_kernel`.
+the classifier, are in :mod:`stream.tree.kernel`.
 
 Contents
 --------
 new_leaf / fresh_detector / activate
     A leaf from the free-id stack (or the end of the table) with a fresh detector; an
-    observer slot given (:func:`stream.node_kernel.deactivate` takes it back).
+    observer slot given (:func:`stream.tree.kernel.deactivate` takes it back).
 leaf_bytes / leaf_cap / enforce_leaf_cap
     The memory budget of the active leaves' observers.
 start_alternate / react
     What a node does with its detector's verdict (Bifet & Gavalda, IDA 2009): an alarm
     where the error rose grows an alternate beside the node (leaves included); the
-    swap test of :mod:`stream.regression_drift` puts the alternate in its place or
+    swap test of :mod:`stream.regress.drift` puts the alternate in its place or
     drops it.
 
-All functions take the whole :class:`stream.regression_tables.RegressorTables` ``t``:
+All functions take the whole :class:`stream.regress.tables.RegressorTables` ``t``:
 they are off the per-record path, or on it only when something changes.
 """
 
@@ -162,9 +162,9 @@ def react(t, n: int, alarm: bool, before: float, record: int) -> int:
     """Act on node ``n``'s detector (Bifet & Gavalda 2009).
 
     An alarm restarts the node's error estimate and, when the error rose and no
-    alternate grows there yet, starts one beside the node (as MOA's and river's
-    adaptive trees: a further alarm does not restart a growing alternate). With an
-    alternate, the swap test of :func:`stream.regression_drift.swap_verdict` replaces
+    alternate grows there yet, starts one beside the node (as river's adaptive
+    trees too: a further alarm does not restart a growing alternate). With an
+    alternate, the swap test of :func:`stream.regress.drift.swap_verdict` replaces
     the node or drops the alternate. Returns the node now standing where ``n`` stood
     (``n`` itself unless an alternate was swapped in).
     """
@@ -173,7 +173,7 @@ def react(t, n: int, alarm: bool, before: float, record: int) -> int:
         t.state[S_ALARMS] += 1
         if t.cfg_i[RC_DETECTOR] == ADWIN:
             # ADWIN has cut its window to the part after the change: compare its mean
-            # with the whole window's before (as MOA's adaptive tree does)
+            # with the whole window's before (Bifet & Gavalda 2009: the detector's estimate before and after the change)
             after = adwin_mean(t.adwin_state, d)
             rose = after > before
         else:

@@ -4,7 +4,7 @@ The regressor shares the Hoeffding bound, grace period, tie threshold and memory
 with the classifier (published defaults: grace period 200, delta 1e-7, tie threshold
 0.05; Domingos & Hulten, KDD 2000), but its split criteria, leaf models and numeric
 observer differ, so it has its own settings and registries rather than overloading
-:class:`stream.settings.TreeSettings`.
+:class:`stream.classify.settings.TreeSettings`.
 
 Registries map names to kernel ids; the CLI takes its choices from them.
 """
@@ -31,7 +31,7 @@ REGRESSION_OBSERVERS = {"quantile": 0}
 """Numeric split observers by name -> kernel id. ``quantile``: per leaf and feature,
 bins with edges at quantiles of the first values the leaf sees, holding the exact
 target count, mean and variance per bin (bounded memory; see
-:mod:`stream.regression_observers`)."""
+:mod:`stream.regress.splits`)."""
 
 
 @dataclasses.dataclass(frozen=True)
@@ -69,7 +69,7 @@ class RegressionSettings(SettingsRecord):
         Fading factor of the squared errors the adaptive leaves compare, in (0, 1].
     detector
         Drift detector kept at every node on the normalised absolute error of the
-        records' leaf predictions (:mod:`stream.regression_drift`): ``adwin``,
+        records' leaf predictions (:mod:`stream.regress.drift`): ``adwin``,
         ``page_hinkley`` or ``off``. On an alarm where the error rose an alternate
         subtree grows beside the node (Bifet & Gavalda, IDA 2009).
     adwin_delta

@@ -29,7 +29,7 @@ Category observer
     Target count, mean and M2 per category code: one multiway candidate (a branch per
     code seen) and one ``x == code`` candidate per code.
 
-Functions take the table they work on (layouts in :mod:`stream.regression_tables`), the
+Functions take the table they work on (layouts in :mod:`stream.regress.tables`), the
 slot ``s`` and the feature's index ``j`` among features of its kind.
 """
 

@@ -1,13 +1,13 @@
 """The regression tree's state as a few typed tables, and how they are allocated and grown.
 
 The written-down interface of the regressor's compiled core, built like the classifier's
-(:mod:`stream.tables`): all state lives in the :class:`RegressorTables` named tuple;
+(:mod:`stream.classify.tables`): all state lives in the :class:`RegressorTables` named tuple;
 kernels update it in place and never allocate state; when a table is full a kernel
 returns to Python, which enlarges it (:func:`grow`) and calls again from the same record.
 
 The node columns (all of ``node_i``; ``node_f`` columns THRESHOLD and WEIGHT), the
 counters of the same names, events and ``fmap`` have the positions and meanings of the
-classifier's: both come from :mod:`stream.node_layout`, so routing, alternates and the
+classifier's: both come from :mod:`stream.tree.layout`, so routing, alternates and the
 views of the main tree are written once for both trees.
 
 Nodes (capacity N; ids 0..S_NODES-1, dead ids are reused; the main root is S_ROOT)
@@ -57,8 +57,8 @@ Leaf observers (capacity S slots; only active leaves hold one)
     c_stats f8[S, Fc, K, 3]    target count, mean, Welford M2 per category code
     free_slots int64[S]        stack of free slot ids
 
-Drift (one detector row per live node; see :mod:`stream.drift` and
-:mod:`stream.regression_drift`)
+Drift (one detector row per live node; see :mod:`stream.tree.drift` and
+:mod:`stream.regress.drift`)
     adwin_buckets, adwin_counts, adwin_state   ADWIN tables (zero rows unless chosen)
     ph_state                                   Page-Hinkley table (zero rows unless chosen)
     free_dets   int64[N]   stack of free detector rows
@@ -73,7 +73,7 @@ Drift (one detector row per live node; see :mod:`stream.drift` and
                              the scale that normalises errors into [0, 1]
 
 Other
-    state   int64[32]  counters, indices S_* (:mod:`stream.node_layout`, shared with the
+    state   int64[32]  counters, indices S_* (:mod:`stream.tree.layout`, shared with the
                        classifier)
     cfg_i, cfg_f       settings, indices RC_* and RF_* below
     fmap    int64[F, 3]  per feature: FM_KIND (0 numeric, 1 category), FM_LOCAL (index
@@ -109,7 +109,7 @@ from .settings import (REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS, REGRESSION_O
 ES_WEIGHT, ES_MEAN, ES_MAD_WEIGHT, ES_MAD = range(4)
 ERR_SCALE_SIZE = 4
 
-# node_f columns (THRESHOLD and WEIGHT as in stream.tables)
+# node_f columns (THRESHOLD and WEIGHT as in stream.classify.tables)
 THRESHOLD, WEIGHT, LAST_ATTEMPT, Y_N, Y_MEAN, Y_M2, ERR_MEAN, ERR_LINEAR, MERIT, SCORED, \
     ABS_ERROR, SQ_ERROR, OBSERVED, ERR_SUM, ERR_SQ, ERR_N = range(16)
 NODE_F_COLS = 16
@@ -133,7 +133,7 @@ CFG_F_SIZE = 12
 
 SCALE_FADING = 0.999
 """Fading factor of the target's mean and mean absolute deviation that normalise the
-errors the detectors watch (:mod:`stream.regression_drift`): about the last thousand
+errors the detectors watch (:mod:`stream.regress.drift`): about the last thousand
 records carry the scale."""
 
 FIELDS = ("node_i", "node_f", "lin", "lin_x", "child_table", "scale", "q_edges", "q_stats",
@@ -165,7 +165,7 @@ def config_arrays(settings: RegressionSettings) -> tuple[np.ndarray, np.ndarray]
     cfg_f[RF_DECAY] = settings.selector_decay
     cfg_i[RC_DETECTOR] = DETECTORS[settings.detector]
     cfg_i[RC_ADWIN_CLOCK] = 32          # river.drift.ADWIN defaults (Bifet & Gavalda 2007),
-    cfg_i[RC_ADWIN_BUCKETS] = 5         # as the classifier's (stream.tables.config_arrays)
+    cfg_i[RC_ADWIN_BUCKETS] = 5         # as the classifier's (stream.classify.tables.config_arrays)
     cfg_i[RC_ADWIN_MIN_LEN] = 5
     cfg_i[RC_ADWIN_GRACE] = 10
     cfg_f[RF_ADWIN_DELTA] = settings.adwin_delta

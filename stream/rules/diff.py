@@ -3,7 +3,7 @@
 Inside: :func:`diff_rules` (two lists of :class:`~stream.rules.Rule` -> :class:`RuleDiff`),
 :func:`render_diff_text` (for people), :meth:`RuleDiff.to_dict` (for machines), and
 :func:`load_side` and :func:`pick_pair` (rules from snapshot files, model files and
-snapshot directories). Regions and their relations live in :mod:`stream.regions`.
+snapshot directories). Regions and their relations live in :mod:`stream.rules.regions`.
 
 How rules are matched
 ---------------------

@@ -3,8 +3,8 @@
 Inside: :class:`Span` (one feature's constraint: a numeric interval ``lo < x <= hi`` or
 a category set, plus whether missing values are admitted), :func:`region_of` (a rule's
 conditions merged per feature into spans), :func:`shape_of`, :func:`overlaps` and
-:func:`within`. Diffs (:mod:`stream.diff`), simplification (:mod:`stream.simplify`) and
-matching records against snapshot rules (:mod:`stream.explain`) build on these.
+:func:`within`. Diffs (:mod:`stream.rules.diff`), simplification (:mod:`stream.rules.simplify`) and
+matching records against snapshot rules (:mod:`stream.views.explain`) build on these.
 """
 
 from __future__ import annotations

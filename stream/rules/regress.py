@@ -152,7 +152,7 @@ def _leaf_total(model) -> float:
 def leaf_consequent(model, leaf: int, max_terms: int = 3, total: float | None = None
                     ) -> Consequent:
     """The :class:`Consequent` of leaf node ``leaf`` of a
-    :class:`stream.regressor.TreeRegressor`; ``total`` (records at all leaves) is
+    :class:`stream.regress.TreeRegressor`; ``total`` (records at all leaves) is
     computed when not given."""
     t = model.tables_
     f = t.node_f[leaf]

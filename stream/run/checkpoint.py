@@ -6,7 +6,7 @@ fingerprint that tells whether a checkpoint belongs to a command (:func:`job_fin
 :func:`check_fingerprint`), :class:`ResumableOutput` (an appended output file cut back to
 its length at the checkpoint) and :func:`rollback_snapshots`.
 
-The file is sapwood's state container (:mod:`stream.model_file`: versioned, every byte
+The file is sapwood's state container (:mod:`stream.run.model_file`: versioned, every byte
 checksummed, written to a temporary file, fsynced and renamed into place; never pickle)
 of kind ``sapwood-checkpoint``. Its ``meta`` (JSON) holds::
 

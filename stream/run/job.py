@@ -42,7 +42,7 @@ class LearnJob:
     checkpoint may have written to it. Delayed labels: ``labels`` (sources of id, target
     and time rows), joined within ``label_window`` records and, if set,
     ``label_seconds`` of data time; ``id_field`` declares the id field (see
-    :mod:`stream.delayed_labels`).
+    :mod:`stream.run.delayed_labels`).
     """
 
     sources: list[str]

@@ -1,6 +1,6 @@
 """A saved learner: the tree, the encoder, the schema and the metrics in one model file.
 
-The container is :mod:`stream.model_file` (versioned, checksummed, never pickle). The
+The container is :mod:`stream.run.model_file` (versioned, checksummed, never pickle). The
 encoder's code books travel with the tree, so a scorer encodes new records exactly as
 the learner did. Either task (class or numeric target) is saved the same way.
 """

@@ -13,7 +13,7 @@ and ``text`` (file names in the directory) and, if the payload carried one, its
 
 Order of writing, so that a reader following the index never meets a missing or partial
 file: the snapshot's JSON, then its text, then the index, each replaced atomically
-(:mod:`stream.atomic`); retention first drops old entries from the index, then deletes
+(:mod:`stream.run.atomic`); retention first drops old entries from the index, then deletes
 their files. A crash between steps leaves at worst a snapshot the index does not list; the
 next :meth:`SnapshotStore.write` (or :meth:`SnapshotStore.rebuild_index`) adopts it.
 Other files in the directory are left alone. One writer per directory: there is no lock.

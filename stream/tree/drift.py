@@ -11,7 +11,7 @@ ADWIN (Bifet & Gavalda, SDM 2007)
 
     the oldest bucket is dropped and the test repeats. An alarm resets the detector at
     the next update. Parameters and this exact schedule are river 0.26.1's
-    (``river.drift.ADWIN``), so alarms fall on the same records (tests/test_drift.py).
+    (``river.drift.ADWIN``), so alarms fall on the same records (tests/tree/test_drift.py).
 Page-Hinkley (Page 1954)
     Cumulative deviations from the running mean with a forgetting factor ``alpha``; an
     alarm when the deviation from the running extreme exceeds ``threshold`` (after

@@ -1,4 +1,4 @@
-"""Compiled operations on the node layout both trees share (:mod:`stream.node_layout`):
+"""Compiled operations on the node layout both trees share (:mod:`stream.tree.layout`):
 routing a record through a branch, the birth of leaves, giving back an observer slot,
 walks, death, swap and recycling of subtrees, and the event buffer.
 
@@ -20,7 +20,7 @@ add_event
     An alarm, start, swap or drop, appended for Python to collect after the call.
 
 Functions take either the individual tables they touch or a tree's whole tables ``t``
-(a :class:`stream.tables.ClassifierTables` or :class:`stream.regression_tables.
+(a :class:`stream.classify.tables.ClassifierTables` or :class:`stream.regress.tables.
 RegressorTables`; numba compiles one version for each).
 """
 

@@ -1,13 +1,13 @@
 """The node layout both trees share: column and counter positions, and the Python code
 that allocates and grows the node, detector and event tables.
 
-The classifier (:mod:`stream.tables`) and the regressor (:mod:`stream.regression_tables`)
+The classifier (:mod:`stream.classify.tables`) and the regressor (:mod:`stream.regress.tables`)
 keep their trees in tables of the same shape: ``node_i`` (the integer columns below, all
 of them shared), ``node_f`` (THRESHOLD and WEIGHT first, then each tree's own statistics),
 ``child_table``, one detector row per live node, stacks of free node ids and detector
 rows, an event buffer, ``state`` counters and ``fmap``. What is defined here has one
-meaning in both, so routing, the life of alternate subtrees (:mod:`stream.node_kernel`)
-and the views of the main tree (:mod:`stream.tree_views`) are written once. Each tables
+meaning in both, so routing, the life of alternate subtrees (:mod:`stream.tree.kernel`)
+and the views of the main tree (:mod:`stream.tree.views`) are written once. Each tables
 module re-exports these names beside its own.
 """
 

@@ -2,8 +2,8 @@
 kernel over a batch until every record is learned, collect the drift events it left,
 and grow the tables for new category codes or when the kernel found no room.
 
-:class:`TableUpkeep` is the shared base of :class:`stream.classifier.TreeClassifier`
-and :class:`stream.regressor.TreeRegressor`; each names its own table functions in
+:class:`TableUpkeep` is the shared base of :class:`stream.classify.TreeClassifier`
+and :class:`stream.regress.TreeRegressor`; each names its own table functions in
 ``_ops``.
 """
 
@@ -28,7 +28,7 @@ class DriftEvent:
     records learned before the event; ``before``/``after`` are error rates (alarm: the
     node's rate before, and the detector's recent rate; swap/drop: the node's and the
     alternate's); for a regression tree, mean normalised absolute errors
-    (:mod:`stream.regression_drift`). ``path`` is the node's path as rule conditions."""
+    (:mod:`stream.regress.drift`). ``path`` is the node's path as rule conditions."""
 
     kind: str
     node: int

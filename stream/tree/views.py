@@ -2,7 +2,7 @@
 and the check of the feature arguments both constructors take.
 
 Both learners keep their nodes in tables with the node layout of
-:mod:`stream.node_layout`; :class:`MainTreeViews` reads them. A subclass holds ``tables_``.
+:mod:`stream.tree.layout`; :class:`MainTreeViews` reads them. A subclass holds ``tables_``.
 """
 
 from __future__ import annotations

@@ -9,7 +9,7 @@ line, or files of them) and the renderers :func:`render_explanation` and
 :meth:`Explanation.to_dict`.
 
 With a model the answer is the tree's own: the record is routed by the same compiled
-code that scores it (:meth:`stream.classifier.TreeClassifier.predict`), and the rule
+code that scores it (:meth:`stream.classify.TreeClassifier.predict`), and the rule
 is the one read off the leaf it reaches. The path lists every test on the way, with the
 record's value and whether the record went that way because the value was missing (or
 a category the split had no branch for), in which case it follows the busiest branch.

@@ -7,7 +7,7 @@ from a snapshot directory, a metrics log and an optional drift events file),
 :func:`render_report` (data -> HTML text; pure) and :func:`write_report`.
 
 The page fetches nothing: styles are inline, charts are inline SVG
-(:mod:`stream.svg_plot`), there is no script, and a Content-Security-Policy meta tag
+(:mod:`stream.views.svg_plot`), there is no script, and a Content-Security-Policy meta tag
 forbids every fetch, so a browser reports any reference that would leave the file. The
 data behind the charts are embedded as JSON (``<script type="application/json"
 id="report-data">``, which browsers do not run), so a reader can check each plotted
@@ -88,7 +88,7 @@ def load_report_data(snapshot_dir: str, metrics_path: str | None = None,
 
 def churn_table(snapshots: Sequence[dict]) -> list[dict]:
     """Per snapshot after the first: sequence, records, and the counts of
-    :meth:`stream.diff.RuleDiff.churn` against the snapshot before it."""
+    :meth:`stream.rules.diff.RuleDiff.churn` against the snapshot before it."""
     rows = []
     previous = None
     for document in snapshots:
