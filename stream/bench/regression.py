@@ -89,7 +89,7 @@ def wide_friedman(n: int, seed: int = 42, n_features: int = 50) -> RegressionStr
 
 def river_counterpart(settings: RegressionSettings | None = None, adaptive: bool = False,
                       seed: int = 42, nominal: list | None = None):
-    """river's regression tree configured like ``settings`` (its own observers and linear
+    """river's regression tree configured like ``settings`` (its own split statistics and linear
     model; those have no exact counterpart)."""
     from river import tree
     settings = settings or RegressionSettings()

@@ -37,7 +37,7 @@ from .splits import (category_best, category_equals_post, category_log_likelihoo
 from .tables import (ALT, ALT_OF, ALTERNATE, BRANCH, C_ADWIN_BUCKETS, C_ADWIN_CLOCK,
                      C_ADWIN_GRACE, C_ADWIN_MIN_LEN, C_BINARY_CATS, C_CANDIDATES,
                      C_CRITERION, C_DETECTOR, C_GRACE, C_LEAF_MODEL, C_MAX_DEPTH,
-                     C_NB_AFTER, C_OBSERVER, C_PH_MIN, C_PH_MODE, C_PREPRUNE, C_SWAP_AFTER,
+                     C_NB_AFTER, C_SPLITS, C_PH_MIN, C_PH_MODE, C_PREPRUNE, C_SWAP_AFTER,
                      CHILD_START, DEPTH, DET, EQUALS, ERR_N, ERR_SUM, EV_ALARM, EV_DROP,
                      EV_START, EV_SWAP, F_ADWIN_DELTA, F_DELTA, F_MAX_SHARE, F_MEMORY_BYTES,
                      F_MIN_BRANCH, F_PH_ALPHA, F_PH_DELTA, F_PH_THRESHOLD,
@@ -211,7 +211,7 @@ def vote_with_alternates(t, path, m: int, x, seen: int, rank, mc, nb, votes, scr
 def learn_at_leaf(counts, node_i, node_f, gauss, cats, fmap, n: int, x, k: int,
                   w: float, density: bool) -> None:
     """Add record ``x`` of class ``k`` to leaf ``n``'s counts and, if active, its Gaussian
-    and category observers (the histogram observer is fed by :func:`learn_histograms`)."""
+    and category statistics (the histogram split statistic is fed by :func:`learn_histograms`)."""
     counts[n, k] += w
     a = n
     while a >= 0:
@@ -232,7 +232,7 @@ def learn_at_leaf(counts, node_i, node_f, gauss, cats, fmap, n: int, x, k: int,
 
 @njit
 def learn_histograms(edges, hcounts, buf, meta, fmap, s: int, x, k: int, w: float) -> None:
-    """Feed the numeric values of ``x`` to the histogram observers of slot ``s``."""
+    """Feed the numeric values of ``x`` to the histogram split statistics of slot ``s``."""
     for f in range(x.shape[0]):
         v = x[f]
         if fmap[f, FM_KIND] == 0 and not math.isnan(v):
@@ -256,7 +256,7 @@ def note_categories(fmap, state, x) -> None:
 @njit
 def leaf_bytes(state, n_numeric: int, n_cat: int, bins: int, buffer: int) -> float:
     """Bytes of statistics an active leaf holds at the class and category counts seen so
-    far (``bins`` = 0 without the histogram observer)."""
+    far (``bins`` = 0 without the histogram split statistic)."""
     classes = max(state[S_CLASSES_SEEN], 2)
     cats = max(state[S_CATS_SEEN], 1)
     per = 7 * n_numeric * classes + n_cat * classes * (cats + 1)
@@ -346,7 +346,7 @@ def enforce_leaf_cap(t) -> None:
 
     Promise is the weight a leaf still gets wrong (its records minus its majority count),
     as in the memory management of Domingos & Hulten (2000) and Kirkby (2007). A
-    reactivated leaf starts its observers afresh.
+    reactivated leaf starts its split statistics afresh.
     """
     cap = leaf_cap(t)
     n_leaves = t.state[S_LEAVES]
@@ -399,7 +399,7 @@ def candidate_post(t, n: int, f: int, kind: int, threshold: float, post) -> None
     j = t.fmap[f, FM_LOCAL]
     if kind == EQUALS:
         category_equals_post(t.cats, s, j, int(threshold), post)
-    elif t.cfg_i[C_OBSERVER] == HISTOGRAM:
+    elif t.cfg_i[C_SPLITS] == HISTOGRAM:
         histogram_post_at(t.hist_edges, t.hist_counts, t.hist_meta, s, j, threshold, post)
     else:
         gaussian_post(t.gauss, s, j, threshold, post)
@@ -454,7 +454,7 @@ def feature_candidate(t, s: int, f: int, pre, post):
     criterion = t.cfg_i[C_CRITERION]
     min_fraction = t.cfg_f[F_MIN_BRANCH]
     if t.fmap[f, FM_KIND] == 0:
-        if t.cfg_i[C_OBSERVER] == HISTOGRAM:
+        if t.cfg_i[C_SPLITS] == HISTOGRAM:
             m, v = histogram_best(t.hist_edges, t.hist_counts, t.hist_buf, t.hist_meta, s, j,
                                   pre, criterion, min_fraction, post)
         else:
@@ -474,7 +474,7 @@ def attempt_split(t, n: int, record: int) -> None:
     null attribute). The leaf splits when the best beats the second by more than eps, or
     when eps has shrunk below the tie threshold. When "no split" wins, or one class
     holds more than ``max_share_to_split`` of the leaf, the leaf is deactivated and the
-    memory budget decides whether it is reactivated with fresh observers.
+    memory budget decides whether it is reactivated with fresh split statistics.
     """
     n_classes = t.counts.shape[1]
     pre = t.counts[n].copy()
@@ -677,7 +677,7 @@ def learn_leaf_record(t, n: int, root: int, x, k: int, record: int, detoured: bo
             t.node_f[n, NB_CORRECT] += 1.0
     learn_at_leaf(t.counts, t.node_i, t.node_f, t.gauss, t.cats, t.fmap, n, x, k, 1.0,
                   t.cfg_i[C_LEAF_MODEL] != MAJORITY)
-    if t.cfg_i[C_OBSERVER] == HISTOGRAM and s >= 0:
+    if t.cfg_i[C_SPLITS] == HISTOGRAM and s >= 0:
         learn_histograms(t.hist_edges, t.hist_counts, t.hist_buf, t.hist_meta, t.fmap, s,
                          x, k, 1.0)
     if s < 0:
@@ -732,7 +732,7 @@ def learn_batch(t, X, y, start: int, rank, pred, confidence, leaf) -> int:
     nb_after = t.cfg_i[C_NB_AFTER]
     grace = t.cfg_i[C_GRACE]
     max_depth = t.cfg_i[C_MAX_DEPTH]
-    histogram = t.cfg_i[C_OBSERVER] == HISTOGRAM
+    histogram = t.cfg_i[C_SPLITS] == HISTOGRAM
     watching = t.cfg_i[C_DETECTOR] != NO_DETECTOR
     density = leaf_model != MAJORITY
     counts, node_i, node_f, child_table = t.counts, t.node_i, t.node_f, t.child_table

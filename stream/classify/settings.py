@@ -22,8 +22,8 @@ LEAF_MODELS = {"majority": 0, "naive_bayes": 1, "adaptive": 2}
 other two has been right more often on the records that leaf has seen."""
 
 
-NUMERIC_OBSERVERS = {"gaussian": 0, "histogram": 1}
-"""Numeric split observers by name -> kernel id. ``gaussian``: per-class normal estimators
+NUMERIC_SPLITS = {"gaussian": 0, "histogram": 1}
+"""Numeric split statistics by name -> kernel id. ``gaussian``: per-class normal estimators
 with evenly spaced candidate thresholds; ``histogram``: per-leaf quantile bins with exact
 class counts, for skewed sensors."""
 
@@ -44,12 +44,12 @@ class TreeSettings(SettingsRecord):
         Split anyway when the bound has shrunk below this (tau).
     leaf_model
         ``majority``, ``naive_bayes`` or ``adaptive``.
-    numeric_observer
+    numeric_splits
         ``gaussian`` or ``histogram``.
     candidate_thresholds
-        Evenly spaced thresholds the Gaussian observer tries between min and max.
+        Evenly spaced thresholds the Gaussian split statistic tries between min and max.
     histogram_bins
-        Bins per leaf and feature of the histogram observer.
+        Bins per leaf and feature of the histogram split statistic.
     min_branch_fraction
         A split needs two branches each holding more than this share of the weight.
     max_share_to_split
@@ -85,7 +85,7 @@ class TreeSettings(SettingsRecord):
     delta: float = 1e-7
     tie_threshold: float = 0.05
     leaf_model: str = "adaptive"
-    numeric_observer: str = "gaussian"
+    numeric_splits: str = "gaussian"
     candidate_thresholds: int = 10
     histogram_bins: int = 32
     min_branch_fraction: float = 0.01
@@ -107,7 +107,7 @@ class TreeSettings(SettingsRecord):
         require_float("delta", self.delta, 0.0, 1.0)
         require_float("tie threshold", self.tie_threshold, 0.0, math.inf, low_open=False)
         require_choice("leaf model", self.leaf_model, LEAF_MODELS)
-        require_choice("numeric observer", self.numeric_observer, NUMERIC_OBSERVERS)
+        require_choice("numeric splits", self.numeric_splits, NUMERIC_SPLITS)
         require_int("candidate thresholds", self.candidate_thresholds, 1)
         require_int("histogram bins", self.histogram_bins, 2)
         require_float("min branch fraction", self.min_branch_fraction, 0.0, 0.5,

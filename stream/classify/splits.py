@@ -1,15 +1,15 @@
 """Sufficient statistics an active leaf keeps per feature, and the split candidates they offer.
 
-Gaussian observer (numeric features)
+Gaussian split statistic (numeric features)
     Per class a weighted Welford mean/variance plus min and max. Candidate thresholds are
     evenly spaced between the overall min and max; the class weights on each side are
     estimated from each class's normal CDF. These are the estimators of the Hoeffding tree
     literature (Domingos & Hulten 2000; Kirkby 2007; river does the same); the same statistics feed naive Bayes.
-Histogram observer (numeric features, optional)
+Histogram split statistic (numeric features, optional)
     Per leaf, bin edges are set at quantiles of the first values it sees (so skewed sensors
     get fine bins where the data are), then exact class counts per bin. Candidate thresholds
     are the edges; the class weights on each side are exact.
-Category observer
+Category statistics
     Class weights per category code: one multiway candidate (a branch per code) and one
     ``x == code`` candidate per code.
 
@@ -32,7 +32,7 @@ _HALF_LOG_TAU = 0.5 * math.log(2.0 * math.pi)
 _SQRT2 = math.sqrt(2.0)
 
 
-# ---------------------------------------------------------------- Gaussian observer
+# ---------------------------------------------------------------- Gaussian split statistic
 
 @njit
 def gaussian_update(gauss: np.ndarray, s: int, j: int, k: int, v: float, w: float,
@@ -161,7 +161,7 @@ def gaussian_best(gauss: np.ndarray, s: int, j: int, pre: np.ndarray, criterion:
     return best, best_threshold
 
 
-# ---------------------------------------------------------------- histogram observer
+# ---------------------------------------------------------------- histogram split statistic
 
 @njit
 def histogram_update(edges: np.ndarray, counts: np.ndarray, buf: np.ndarray,
@@ -245,7 +245,7 @@ def histogram_post_at(edges: np.ndarray, counts: np.ndarray, meta: np.ndarray, s
     histogram_post(counts, s, j, edge, post)
 
 
-# ---------------------------------------------------------------- category observer
+# ---------------------------------------------------------------- category statistics
 
 @njit
 def category_update(cats: np.ndarray, s: int, j: int, k: int, code: int, w: float) -> None:

@@ -43,7 +43,7 @@ Leaf statistics (capacity S slots; only active leaves hold one)
     hist_meta   int64[S, Fn, 3]  H_READY (edges set), H_NEDGES (edges in use), H_NBUF
                                  (values buffered); all zero for a fresh slot
     free_slots  int64[S]         stack of free slot ids (the histogram tables have S = 0
-                                 rows unless the histogram observer is chosen)
+                                 rows unless the histogram split statistic is chosen)
 
 Drift (one detector row per live node; see :mod:`stream.tree.drift`)
     adwin_buckets, adwin_counts, adwin_state   ADWIN tables (zero rows unless chosen)
@@ -84,7 +84,7 @@ from stream.tree.layout import (ALT, ALT_OF, ALTERNATE, BRANCH, CHILD_START, CRE
                                 resized)
 from stream.tree.settings import DETECTORS
 
-from .settings import CRITERIA, LEAF_MODELS, NUMERIC_OBSERVERS, TreeSettings
+from .settings import CRITERIA, LEAF_MODELS, NUMERIC_SPLITS, TreeSettings
 
 # node_f columns
 THRESHOLD, WEIGHT, LAST_ATTEMPT, MC_CORRECT, NB_CORRECT, MERIT, SCORED, HITS, ERR_SUM, \
@@ -101,7 +101,7 @@ S_CLASSES_SEEN = 5   # 1 + highest class code learned so far
 S_PRUNED = 8         # split attempts where "no split" won
 
 # cfg_i indices
-C_CRITERION, C_GRACE, C_LEAF_MODEL, C_OBSERVER, C_CANDIDATES, C_BINS, C_PREPRUNE, \
+C_CRITERION, C_GRACE, C_LEAF_MODEL, C_SPLITS, C_CANDIDATES, C_BINS, C_PREPRUNE, \
     C_BINARY_CATS, C_MAX_DEPTH, C_NB_AFTER, C_BUFFER, C_DETECTOR, C_ADWIN_CLOCK, \
     C_ADWIN_BUCKETS, C_ADWIN_MIN_LEN, C_ADWIN_GRACE, C_PH_MIN, C_PH_MODE, C_SWAP_AFTER \
     = range(19)
@@ -127,7 +127,7 @@ def config_arrays(settings: TreeSettings) -> tuple[np.ndarray, np.ndarray]:
     cfg_i[C_CRITERION] = CRITERIA[settings.criterion]
     cfg_i[C_GRACE] = settings.grace_period
     cfg_i[C_LEAF_MODEL] = LEAF_MODELS[settings.leaf_model]
-    cfg_i[C_OBSERVER] = NUMERIC_OBSERVERS[settings.numeric_observer]
+    cfg_i[C_SPLITS] = NUMERIC_SPLITS[settings.numeric_splits]
     cfg_i[C_CANDIDATES] = settings.candidate_thresholds
     cfg_i[C_BINS] = settings.histogram_bins
     cfg_i[C_PREPRUNE] = int(settings.prepruning)
@@ -173,7 +173,7 @@ def allocate(settings: TreeSettings, feature_kinds: list[str], classes: int = 2,
     fmap, n_numeric, n_cat = feature_map(feature_kinds)
     cfg_i, cfg_f = config_arrays(settings)
     shapes = _slot_shapes(slots, n_numeric, n_cat, classes, cats,
-                          settings.numeric_observer == "histogram", settings.histogram_bins,
+                          settings.numeric_splits == "histogram", settings.histogram_bins,
                           int(cfg_i[C_BUFFER]))
     shapes.update(detector_shapes(int(cfg_i[C_DETECTOR]), nodes, int(cfg_i[C_ADWIN_BUCKETS])))
     integer = ("hist_meta", "adwin_counts")

@@ -16,11 +16,11 @@ from datetime import datetime, timezone
 
 import click
 
-from connectors.sources import FORMATS
 from stream.errors import ConfigError, InputError
+from stream.rules.text import CAUTION
 
-SAFETY_NOTE = ("Learned rules are advisory, not safety interlocks: defer to site safety "
-               "systems, local codes and licensed practice.")
+from .options import Number, Whole, form_option, format_option, option, renamed
+
 
 
 def _iso_now() -> str:
@@ -36,12 +36,12 @@ def _iso_now() -> str:
               help="Snapshot number to compare from (default: the one before --to).")
 @click.option("--to", "last", type=int, default=None, metavar="N",
               help="Snapshot number to compare to (default: the newest).")
-@click.option("--format", "fmt", type=click.Choice(["text", "json", "markdown"]),
-              default="text", show_default=True, help="For people, machines, or tickets.")
-@click.option("--min-shift", type=float, default=2.0, show_default=True,
-              help="Smallest move in confidence or coverage (percentage points) listed for "
-                   "a rule whose conditions and outcome stayed the same.")
-def diff(paths, first, last, fmt, min_shift) -> None:
+@form_option(("text", "json", "markdown"), "For people, machines, or tickets.")
+@option("--min-shift", type=Number(0.0, unit="of percentage points"), default=2.0,
+        show_default=True,
+        help="Smallest move in confidence or coverage (percentage points) listed for a "
+             "rule whose conditions and outcome stayed the same.")
+def diff(paths, first, last, form, form_old, min_shift) -> None:
     """Compare two rule sets: the newest two snapshots of DIRECTORY (or --from/--to), or
     two snapshot or model files OLD and NEW.
 
@@ -57,9 +57,7 @@ def diff(paths, first, last, fmt, min_shift) -> None:
     from stream.rules.diff import diff_rules, render_diff_text
     from stream.views.rule_sources import pick_pair
 
-    if min_shift < 0:
-        raise ConfigError(f"--min-shift must be a number of percentage points >= 0, "
-                          f"got {min_shift}")
+    fmt = form or form_old or "text"
     (old_header, old_rules), (new_header, new_rules) = pick_pair(paths, first, last)
     result = diff_rules(old_rules, new_rules, old_header, new_header)
     if fmt == "json":
@@ -67,9 +65,9 @@ def diff(paths, first, last, fmt, min_shift) -> None:
     elif fmt == "markdown":
         from stream.rules.markdown import diff_markdown
 
-        click.echo(diff_markdown(result), nl=False)
+        click.echo(diff_markdown(result) + f"\n> {CAUTION}\n", nl=False)
     else:
-        click.echo(render_diff_text(result, min_shift / 100), nl=False)
+        click.echo(render_diff_text(result, min_shift / 100) + f"\n{CAUTION}\n", nl=False)
 
 
 # --------------------------------------------------------------------------- notes
@@ -82,8 +80,8 @@ def diff(paths, first, last, fmt, min_shift) -> None:
                    "snapshot or model file PATH.")
 @click.option("--class", "label", default=None, metavar="LABEL",
               help="Only rules that predict LABEL (e.g. the fault class).")
-@click.option("--top", type=int, default=None, help="Only the this many rules covering "
-                                                     "the most records.")
+@option("--top", type=Whole(1), default=None,
+        help="Only the this many rules covering the most records.")
 @click.option("--exact", is_flag=True,
               help="The tree's rules as they are, without joining rules that decide alike.")
 @click.option("--title", default=None, help="Heading of the note.")
@@ -99,8 +97,6 @@ def notes(path, since, label, top, exact, title) -> None:
     from stream.rules.markdown import shift_note
     from stream.rules.simplify import Simplified, simplify
 
-    if top is not None and top < 1:
-        raise ConfigError(f"--top must be a whole number >= 1, got {top}")
     header, rules = load_side(path)
     items = [Simplified(r, (r.id,)) for r in rules] if exact else simplify(rules)
     if label is not None:
@@ -133,12 +129,12 @@ def notes(path, since, label, top, exact, title) -> None:
 @click.option("--record", "records", multiple=True, metavar="TEXT",
               help="A record as a JSON object, or as a CSV line with the fields in the "
                    "order of the training data's header; repeatable.")
-@click.option("--format", "fmt", type=click.Choice(sorted(FORMATS)), default=None,
-              help="Format of SOURCE files (default: from each file name).")
-@click.option("--output", "output", type=click.Choice(["text", "json"]), default="text",
-              show_default=True, help="Text for people, or one JSON object per record.")
-@click.option("--limit", type=int, default=None, help="Explain at most this many records.")
-def explain(path, sources, records, fmt, output, limit) -> None:
+@format_option(group=None)
+@option("--form", "form", type=click.Choice(["text", "json"]), default="text",
+        show_default=True, help="Text for people, or one JSON object per record.")
+@renamed("--output", "--form", "form", type=click.Choice(["text", "json"]))
+@option("--limit", type=Whole(1), default=None, help="Explain at most this many records.")
+def explain(path, sources, records, fmt, form, form_old, limit) -> None:
     """Say which rule scored each record: the rule, its leaf's class counts and confidence,
     and the path of tests from the root with the record's values.
 
@@ -153,8 +149,7 @@ def explain(path, sources, records, fmt, output, limit) -> None:
     """
     from stream.run.model_file import MAGIC
 
-    if limit is not None and limit < 1:
-        raise ConfigError(f"--limit must be a whole number >= 1, got {limit}")
+    output = form_old or form
     if not records and not sources:
         raise ConfigError("give a record (--record TEXT) or a file of records (SOURCE)")
     is_model = False
@@ -210,7 +205,7 @@ def _explain_with_model(path, sources, records, fmt, output, limit) -> None:
                 click.echo(render_explanation(item, target))
             done += 1
     if output == "text" and done:
-        click.echo(SAFETY_NOTE)
+        click.echo(CAUTION)
 
 
 def _explain_with_rules(path, sources, records, fmt, output, limit) -> None:
@@ -267,7 +262,7 @@ def _explain_with_rules(path, sources, records, fmt, output, limit) -> None:
                 if not emit(f"{batch.origin} line {int(line)}", values):
                     return
     if output == "text" and done:
-        click.echo(SAFETY_NOTE)
+        click.echo(CAUTION)
 
 
 # --------------------------------------------------------------------------- watch
@@ -279,7 +274,8 @@ def _explain_with_rules(path, sources, records, fmt, output, limit) -> None:
               help="The run's metrics log (sapwood learn --metrics).")
 @click.option("--events", "events_path", type=click.Path(dir_okay=False),
               help="The run's drift events file (JSON lines).")
-@click.option("--every", "interval", type=float, default=2.0, show_default=True,
+@option("--every", "interval", type=Number(0.0, inclusive=False, unit="of seconds"),
+        default=2.0, show_default=True,
               help="Seconds between refreshes.")
 @click.option("--once", is_flag=True, help="Show the view once and stop.")
 def watch(snapshot_dir, metrics_path, events_path, interval, once) -> None:
@@ -292,8 +288,6 @@ def watch(snapshot_dir, metrics_path, events_path, interval, once) -> None:
     from stream.views.live_view import WatchState
     from stream.views.live_view import watch as run_watch
 
-    if not interval > 0:
-        raise ConfigError(f"--every must be a number of seconds > 0, got {interval}")
     state = WatchState(snapshot_dir, metrics_path, events_path)
     try:
         run_watch(state, click.get_text_stream("stdout"), interval,

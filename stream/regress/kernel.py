@@ -5,7 +5,7 @@ a leaf, scored there, then learned. A leaf that has observed ``grace_period`` mo
 since its last attempt compares its two best split candidates, ranked by variance (or
 standard deviation) reduction, with FIMT-DD's ratio test (Ikonomovska, Gama & Dzeroski,
 Data Mining and Knowledge Discovery 2011): split when second / best < 1 - eps, eps the
-Hoeffding bound for a range of 1 over the records the leaf's observers hold, or when
+Hoeffding bound for a range of 1 over the records the leaf's split statistics hold, or when
 eps < tau. Batches only amortise the call overhead.
 
 Leaf models
@@ -20,7 +20,7 @@ Leaf models
     adaptive  per leaf, whichever of the two has the lower faded squared error
               E <- decay E + e^2 (ties go to the linear model), as in river's regressor.
 On a split each child starts from its side's target statistics, the parent's linear
-model and the parent's faded errors (as in FIMT-DD and river), with empty observers.
+model and the parent's faded errors (as in FIMT-DD and river), with empty split statistics.
 Leaves keep updating their target statistics and linear model when inactive.
 
 Drift (unless the detector is ``off``)
@@ -102,7 +102,7 @@ def route(node_i, node_f, child_table, X, i: int, root: int, count: bool, path):
     nodes passed, the leaf last, go into ``path``. With ``count``, every node passed
     gains the record's weight: the record will be learned there, and the rows are in
     cache now."""
-    # written out without calls: see observe() in regression_observers for why
+    # written out without calls: see observe() in stream.regress.splits for why
     n = root
     m = 0
     detoured = False

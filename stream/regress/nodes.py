@@ -1,4 +1,4 @@
-"""Nodes of the regression tree: their birth, observer slots, detectors, and the life of
+"""Nodes of the regression tree: their birth, statistics slots, detectors, and the life of
 alternate subtrees (started, swapped in, dropped). Their death and recycling, shared with
 the classifier, are in :mod:`stream.tree.kernel`.
 
@@ -6,9 +6,9 @@ Contents
 --------
 new_leaf / fresh_detector / activate
     A leaf from the free-id stack (or the end of the table) with a fresh detector; an
-    observer slot given (:func:`stream.tree.kernel.deactivate` takes it back).
+    statistics slot given (:func:`stream.tree.kernel.deactivate` takes it back).
 leaf_bytes / leaf_cap / enforce_leaf_cap
-    The memory budget of the active leaves' observers.
+    The memory budget of the active leaves' split statistics.
 start_alternate / react
     What a node does with its detector's verdict (Bifet & Gavalda, IDA 2009): an alarm
     where the error rose grows an alternate beside the node (leaves included); the
@@ -73,7 +73,7 @@ def fresh_detector(t, n: int) -> None:
 
 @njit
 def activate(t, n: int) -> None:
-    """Give leaf ``n`` a cleared observer slot."""
+    """Give leaf ``n`` a cleared statistics slot."""
     top = t.state[S_FREE_TOP] - 1
     t.state[S_FREE_TOP] = top
     s = t.free_slots[top]
@@ -90,7 +90,7 @@ def activate(t, n: int) -> None:
 
 @njit
 def leaf_bytes(state, n_numeric: int, n_cat: int, bins: int, buffer: int) -> float:
-    """Bytes of observers an active leaf holds at the category counts seen so far."""
+    """Bytes of split statistics an active leaf holds at the category counts seen so far."""
     cats = max(state[S_CATS_SEEN], 1)
     per = n_numeric * ((bins - 1) + 3 * bins + 2 * buffer + 3) + n_cat * 3 * cats
     return 8.0 * max(per, 1)
@@ -98,7 +98,7 @@ def leaf_bytes(state, n_numeric: int, n_cat: int, bins: int, buffer: int) -> flo
 
 @njit
 def leaf_cap(t) -> int:
-    """Most leaves that may hold observers within the memory budget (at least one)."""
+    """Most leaves that may hold split statistics within the memory budget (at least one)."""
     per = leaf_bytes(t.state, t.q_stats.shape[1], t.c_stats.shape[1], t.q_stats.shape[2],
                      t.q_buf.shape[2])
     return max(1, int(t.cfg_f[RF_MEMORY_BYTES] / per))
@@ -111,7 +111,7 @@ def enforce_leaf_cap(t) -> None:
 
     Promise is the squared error the leaf's mean still leaves (its target M2), the
     regression analogue of the classifier's "records still misclassified". A reactivated
-    leaf starts its observers afresh. Leaves of alternate subtrees compete alike.
+    leaf starts its split statistics afresh. Leaves of alternate subtrees compete alike.
     """
     cap = leaf_cap(t)
     n_leaves = t.state[S_LEAVES]
@@ -143,7 +143,7 @@ def enforce_leaf_cap(t) -> None:
 @njit
 def start_alternate(t, n: int, record: int) -> int:
     """Grow a fresh alternate leaf beside node ``n``, at ``n``'s depth and branch
-    position, starting from ``n``'s linear model (its target statistics and observers
+    position, starting from ``n``'s linear model (its target statistics and split statistics
     start empty)."""
     a = new_leaf(t, t.node_i[n, PARENT], t.node_i[n, BRANCH], ALTERNATE, record, n)
     t.node_i[a, DEPTH] = t.node_i[n, DEPTH]

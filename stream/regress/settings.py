@@ -3,7 +3,7 @@
 The regressor shares the Hoeffding bound, grace period, tie threshold and memory budget
 with the classifier (published defaults: grace period 200, delta 1e-7, tie threshold
 0.05; Domingos & Hulten, KDD 2000), but its split criteria, leaf models and numeric
-observer differ, so it has its own settings and registries rather than overloading
+split statistic differ, so it has its own settings and registries rather than overloading
 :class:`stream.classify.settings.TreeSettings`.
 
 Registries map names to kernel ids; the CLI takes its choices from them.
@@ -27,8 +27,8 @@ REGRESSION_LEAF_MODELS = {"mean": 0, "linear": 1, "adaptive": 2}
 online linear model on standardised inputs (FIMT-DD's perceptron leaves); ``adaptive``:
 per leaf, whichever of the two has the lower faded squared error."""
 
-REGRESSION_OBSERVERS = {"quantile": 0}
-"""Numeric split observers by name -> kernel id. ``quantile``: per leaf and feature,
+REGRESSION_SPLITS = {"quantile": 0}
+"""Numeric split statistics by name -> kernel id. ``quantile``: per leaf and feature,
 bins with edges at quantiles of the first values the leaf sees, holding the exact
 target count, mean and variance per bin (bounded memory; see
 :mod:`stream.regress.splits`)."""
@@ -50,7 +50,7 @@ class RegressionSettings(SettingsRecord):
         Split anyway when the bound has shrunk below this (tau).
     leaf_model
         ``mean``, ``linear`` or ``adaptive``.
-    numeric_observer
+    numeric_splits
         ``quantile`` (the only one so far).
     bins
         Bins per leaf and numeric feature; bins - 1 candidate thresholds.
@@ -61,7 +61,7 @@ class RegressionSettings(SettingsRecord):
     max_depth
         Depth at which leaves stop growing; ``None`` for no limit.
     memory_mb
-        Budget for the observers of active leaves; beyond it the leaves with the
+        Budget for the split statistics of active leaves; beyond it the leaves with the
         smallest remaining squared error are deactivated (they keep predicting).
     learning_rate
         Step of the linear leaves' normalised least-mean-squares update, in (0, 2).
@@ -88,7 +88,7 @@ class RegressionSettings(SettingsRecord):
     delta: float = 1e-7
     tie_threshold: float = 0.05
     leaf_model: str = "adaptive"
-    numeric_observer: str = "quantile"
+    numeric_splits: str = "quantile"
     bins: int = 32
     min_branch_records: int = 5
     binary_categories: bool = False
@@ -108,7 +108,7 @@ class RegressionSettings(SettingsRecord):
         require_float("delta", self.delta, 0.0, 1.0)
         require_float("tie threshold", self.tie_threshold, 0.0, math.inf, low_open=False)
         require_choice("leaf model", self.leaf_model, REGRESSION_LEAF_MODELS)
-        require_choice("numeric observer", self.numeric_observer, REGRESSION_OBSERVERS)
+        require_choice("numeric splits", self.numeric_splits, REGRESSION_SPLITS)
         require_int("bins", self.bins, 2)
         require_int("min branch records", self.min_branch_records, 1)
         if self.max_depth is not None:

@@ -1,6 +1,6 @@
 """What an active regression leaf keeps per feature, and the split candidates it offers.
 
-Quantile observer (numeric features)
+Quantile split statistic (numeric features)
     Per leaf and feature, the first W values (W = 4 x bins) are buffered with their
     targets; then bin edges are placed at quantiles of those values (midway between
     neighbouring values, every distinct value when there are few), the buffer is replayed
@@ -8,11 +8,11 @@ Quantile observer (numeric features)
     its bin. Candidate thresholds are the edges (``x <= edge`` goes left); the target
     statistics on either side are exact merges of whole bins.
 
-    Why this observer: FIMT-DD's extended binary search tree (E-BST) keeps one node per
+    Why this statistic: FIMT-DD's extended binary search tree (E-BST) keeps one node per
     distinct value, so its memory and evaluation cost grow with the stream at a leaf that
     does not split, and it needs a pointer tree that compiled table code cannot hold in
     fixed arrays. Rounding values first (river's truncated E-BST) or hashing them into
-    bins of a fixed radius (river's QO observer; Mastelini & de Leon Ferreira, Pattern
+    bins of a fixed radius (river's QO split statistic; Mastelini & de Leon Ferreira, Pattern
     Recognition Letters 2021) bounds the memory but ties the bin width to the feature's
     units: one digit of rounding is too coarse for a feature in [0, 0.01] and too fine for
     one in the thousands, and a deep leaf that covers a narrow slice of a feature falls
@@ -22,10 +22,10 @@ Quantile observer (numeric features)
     whatever its units, and the statistics inside the bins are exact. The price: a
     threshold can only fall on an edge (the resolution is about 1/bins of the leaf's
     distribution), and edges do not move if a feature's distribution shifts within a
-    leaf's life. The classifier's histogram observer places its edges the same way.
+    leaf's life. The classifier's histogram split statistic places its edges the same way.
     Memory per active leaf and numeric feature: (bins - 1) + 3 bins + 8 bins + 3 floats,
     about 3 KB at 32 bins, two thirds of it the buffer.
-Category observer
+Category statistics
     Target count, mean and M2 per category code: one multiway candidate (a branch per
     code seen) and one ``x == code`` candidate per code.
 
@@ -61,7 +61,7 @@ def welford(stats: np.ndarray, s: int, j: int, b: int, y: float, w: float) -> No
 def observe(edges: np.ndarray, stats: np.ndarray, buf: np.ndarray, meta: np.ndarray,
             cstats: np.ndarray, fmap: np.ndarray, s: int, X: np.ndarray, i: int,
             y: float) -> None:
-    """Add record ``X[i]`` with target ``y`` to every observer of slot ``s``.
+    """Add record ``X[i]`` with target ``y`` to every split statistic of slot ``s``.
 
     Numeric values are buffered until the edges are set, then counted in their bin;
     category codes update their own statistics; missing values are skipped.
@@ -175,7 +175,7 @@ def quantile_best(edges: np.ndarray, stats: np.ndarray, buf: np.ndarray, meta: n
                   left: np.ndarray, right: np.ndarray):
     """Best (merit, threshold) over the edges; the statistics of its two sides into
     ``left`` and ``right``. (-inf, nan) when no edge qualifies. Sets the edges first if
-    the observer is still buffering. ``suffix`` is scratch space, at least bins x 3."""
+    the statistic is still buffering. ``suffix`` is scratch space, at least bins x 3."""
     if meta[s, j, Q_READY] == 0:
         if meta[s, j, Q_NBUF] == 0:
             return -math.inf, math.nan
@@ -200,7 +200,7 @@ def quantile_best(edges: np.ndarray, stats: np.ndarray, buf: np.ndarray, meta: n
     return best, threshold
 
 
-# ---------------------------------------------------------------- category observer
+# ---------------------------------------------------------------- category statistics
 
 @njit
 def category_best(cstats: np.ndarray, s: int, j: int, n_codes: int, criterion: int,

@@ -15,7 +15,7 @@ Nodes (capacity N; ids 0..S_NODES-1, dead ids are reused; the main root is S_ROO
                          2 category multiway -> child_table[start + code], 3 category
                          ``x == code`` -> child 0), FEATURE (-1 at leaves), CHILD_START,
                          N_CHILDREN, PARENT, DEPTH, CREATED (records learned at creation),
-                         SLOT (row of leaf observers, -1 when inactive or a branch),
+                         SLOT (row of leaf split statistics, -1 when inactive or a branch),
                          BRANCH (position in the parent's child block; an alternate root
                          takes the position of the node it may replace), ALT (root of the
                          alternate subtree growing beside this node, -1 none), STATUS
@@ -31,7 +31,7 @@ Nodes (capacity N; ids 0..S_NODES-1, dead ids are reused; the main root is S_ROO
                          mean and the linear model), MERIT (of the chosen split), SCORED,
                          ABS_ERROR, SQ_ERROR (records the leaf scored since it was
                          created, and the sum of their absolute and squared errors),
-                         OBSERVED (records the leaf's observers hold: the n of the
+                         OBSERVED (records the leaf's split statistics hold: the n of the
                          Hoeffding bound), ERR_SUM, ERR_SQ, ERR_N (sum and sum of squares
                          of the normalised absolute errors the node's detector was fed,
                          and their count, since the node's error estimate was last reset:
@@ -49,7 +49,7 @@ Standardisation (tree-wide, as FIMT-DD's perceptrons use)
                          (Welford), SC_SD (sample standard deviation) and SC_INV (1 / SC_SD;
                          both 0 while undefined)
 
-Leaf observers (capacity S slots; only active leaves hold one)
+Leaf split statistics (capacity S slots; only active leaves hold one)
     q_edges f8[S, Fn, B-1]     bin edges, set from the first W values the leaf saw
     q_stats f8[S, Fn, B, 3]    target count, mean, Welford M2 per bin
     q_buf   f8[S, Fn, W, 2]    (value, target) buffered until the edges are set
@@ -102,7 +102,7 @@ from stream.tree.layout import (ALT, ALT_OF, ALTERNATE, BRANCH, CHILD_START, CRE
                                 resized)
 from stream.tree.settings import DETECTORS
 
-from .settings import (REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS, REGRESSION_OBSERVERS,
+from .settings import (REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS, REGRESSION_SPLITS,
                        RegressionSettings)
 
 # err_scale entries
@@ -122,7 +122,7 @@ Q_READY, Q_NEDGES, Q_NBUF = range(3)
 ST_N, ST_MEAN, ST_M2 = range(3)
 
 # cfg_i indices
-RC_CRITERION, RC_GRACE, RC_LEAF_MODEL, RC_OBSERVER, RC_BINS, RC_MIN_BRANCH, \
+RC_CRITERION, RC_GRACE, RC_LEAF_MODEL, RC_SPLITS, RC_BINS, RC_MIN_BRANCH, \
     RC_BINARY_CATS, RC_MAX_DEPTH, RC_BUFFER, RC_DETECTOR, RC_ADWIN_CLOCK, RC_ADWIN_BUCKETS, \
     RC_ADWIN_MIN_LEN, RC_ADWIN_GRACE, RC_PH_MIN, RC_PH_MODE, RC_SWAP_AFTER = range(17)
 CFG_I_SIZE = 20
@@ -152,7 +152,7 @@ def config_arrays(settings: RegressionSettings) -> tuple[np.ndarray, np.ndarray]
     cfg_i[RC_CRITERION] = REGRESSION_CRITERIA[settings.criterion]
     cfg_i[RC_GRACE] = settings.grace_period
     cfg_i[RC_LEAF_MODEL] = REGRESSION_LEAF_MODELS[settings.leaf_model]
-    cfg_i[RC_OBSERVER] = REGRESSION_OBSERVERS[settings.numeric_observer]
+    cfg_i[RC_SPLITS] = REGRESSION_SPLITS[settings.numeric_splits]
     cfg_i[RC_BINS] = settings.bins
     cfg_i[RC_MIN_BRANCH] = settings.min_branch_records
     cfg_i[RC_BINARY_CATS] = int(settings.binary_categories)

@@ -17,12 +17,9 @@ from stream.tree.paths import Condition
 from .diff import RuleDiff, fate_note, origin_note
 from .rule import Rule
 from .simplify import Simplified
-from .text import rule_conditions_text
+from .text import CAUTION, rule_conditions_text
 from .text import format_condition
 
-SAFETY = ("Learned rules describe what the data showed so far. They are advisory, not "
-          "safety interlocks: defer to site safety systems, local codes and licensed "
-          "practice.")
 
 
 def _cell(text: str) -> str:
@@ -179,5 +176,5 @@ def shift_note(rules: Sequence[Rule | Simplified], header: dict,
     parts = [rules_markdown(rules, header, title=title, total=total)]
     if diff is not None:
         parts.append(diff_markdown(diff))
-    parts.append(f"> {SAFETY}\n")
+    parts.append(f"> {CAUTION}\n")
     return "\n".join(parts)

@@ -8,6 +8,14 @@ from stream.tree.paths import Condition
 
 from .rule import Rule
 
+CAUTION = ("Learned rules describe what the data showed so far. They are advisory, not safety "
+           "interlocks: defer to site safety systems, local codes and licensed practice.")
+"""The one-line caution that ends every view of rules meant for people."""
+
+CAUTION_IN_FULL = (CAUTION + " Do not use them to override or bypass protective systems, "
+                   "alarms of record or engineering judgement.")
+"""The caution where there is room for it (the HTML report)."""
+
 
 def rule_conditions_text(rule: Rule) -> str:
     """A rule's conditions on one line: ``door = open AND ambient_c > 27.9``; ``always``
@@ -130,6 +138,5 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
         if extra:
             lines.append(f"{pad}     " + "; ".join(extra))
         lines.append("")
-    lines.append("Learned rules describe the data seen so far. They are advisory, not safety "
-                 "interlocks: defer to site safety systems, local codes and licensed practice.")
+    lines.append(CAUTION)
     return "\n".join(lines) + "\n"

@@ -212,10 +212,10 @@ def warm_up() -> None:
 
     X = np.array([[0.5, 1.0], [0.25, 0.0], [np.nan, 1.0]])
     y = np.array([0, 1, 0], np.int32)
-    for observer in ("gaussian", "histogram"):
+    for splits in ("gaussian", "histogram"):
         for detector in ("adwin", "page_hinkley", "off"):
             model = TreeClassifier(["a", "b"], ["numeric", "category"],
-                                   TreeSettings(numeric_observer=observer, grace_period=1,
+                                   TreeSettings(numeric_splits=splits, grace_period=1,
                                                 detector=detector))
             scored = model.learn(X, y, ["p", "q"])
             model.predict(X)

@@ -1,5 +1,5 @@
 """Compiled operations on the node layout both trees share (:mod:`stream.tree.layout`):
-routing a record through a branch, the birth of leaves, giving back an observer slot,
+routing a record through a branch, the birth of leaves, giving back an statistics slot,
 walks, death, swap and recycling of subtrees, and the event buffer.
 
 Contents
@@ -7,7 +7,7 @@ Contents
 heaviest_child / next_node
     Which child of a branch a record goes to; missing values follow the heaviest child.
 place_leaf / take_detector_row / deactivate
-    A new leaf's id and node columns; its detector row; a leaf gives its observer slot
+    A new leaf's id and node columns; its detector row; a leaf gives its statistics slot
     back (its own statistics and model stay).
 push_children / kill_subtree / recycle_dead / set_status / swap_in_alternate
     Walks of a subtree. A replaced or dropped subtree dies at once (its slots and
@@ -118,7 +118,7 @@ def take_detector_row(t, n: int) -> None:
 
 @njit
 def deactivate(t, n: int) -> None:
-    """Give leaf ``n``'s observer slot back to the free stack (no-op when it has none)."""
+    """Give leaf ``n``'s statistics slot back to the free stack (no-op when it has none)."""
     s = t.node_i[n, SLOT]
     if s < 0:
         return
@@ -146,7 +146,7 @@ def push_children(node_i, child_table, n: int, stack, top: int) -> int:
 @njit
 def kill_subtree(t, root: int) -> None:
     """Mark every node under ``root`` (alternates hanging there included) dead: free their
-    observer slots and detectors at once. Their ids are recycled by :func:`recycle_dead`."""
+    statistics slots and detectors at once. Their ids are recycled by :func:`recycle_dead`."""
     stack = np.empty(t.state[S_NODES] + 1, np.int64)
     stack[0] = root
     top = 1

@@ -160,7 +160,7 @@ def grow_node_rows(arrays: dict, t, nodes: int, detector: int, buckets: int) -> 
 
 
 def grow_slot_stack(arrays: dict, t, slots: int) -> None:
-    """Enlarge, in ``arrays``, the stack of free observer slots of ``t`` to ``slots``."""
+    """Enlarge, in ``arrays``, the stack of free statistics slots of ``t`` to ``slots``."""
     old = t.free_slots.shape[0]
     arrays["free_slots"] = grown_stack(t.free_slots, int(t.state[S_FREE_TOP]), old, slots)
     arrays["state"][S_FREE_TOP] += slots - old

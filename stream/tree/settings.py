@@ -26,6 +26,11 @@ def check_drift_settings(settings: Any) -> None:
     require_float("swap significance", settings.swap_significance, 0.0, 1.0)
 
 
+RENAMED = {"numeric_observer": "numeric_splits"}
+"""Settings renamed since files were first written (old name -> new); files written
+before a rename still load."""
+
+
 class SettingsRecord:
     """``to_dict`` / ``from_dict`` for a settings dataclass; unknown names are refused."""
 
@@ -35,6 +40,7 @@ class SettingsRecord:
     @classmethod
     def from_dict(cls, data: dict):
         known = {f.name for f in dataclasses.fields(cls)}
+        data = {RENAMED.get(k, k) if RENAMED.get(k) in known else k: v for k, v in data.items()}
         unknown = sorted(set(data) - known)
         if unknown:
             raise ConfigError(f"unknown setting {unknown[0]!r}; known: {', '.join(sorted(known))}")

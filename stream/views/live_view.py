@@ -28,7 +28,7 @@ from typing import Callable, Sequence, TextIO
 
 from stream.errors import SapwoodError
 from stream.rules.rule import Rule, rules_from_payload
-from stream.rules.text import rule_conditions_text
+from stream.rules.text import CAUTION, rule_conditions_text
 from stream.run.snapshots import SnapshotStore
 
 from .run_logs import LogTail, check_event, event_path_text
@@ -36,7 +36,6 @@ from .run_logs import LogTail, check_event, event_path_text
 BLOCKS = "▁▂▃▄▅▆▇█"
 ASCII_BLOCKS = "_.-=+*#@"
 PLAIN_WIDTH = 1000
-SAFETY_LINE = "Rules are advisory, not safety interlocks; site safety systems come first."
 
 
 class WatchState:
@@ -227,7 +226,7 @@ def render_frame(state: WatchState, width: int = 100, height: int = 40, now: str
                          f"{event.get('node', '?')!s:<5} {where}")
         lines.append(rule)
 
-    footer = [SAFETY_LINE]
+    footer = [CAUTION]
     if state.problem:
         footer.insert(0, f"(could not read everything this time: {state.problem})")
     room = height - len(lines) - len(footer) - 1

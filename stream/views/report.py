@@ -27,7 +27,7 @@ from stream.errors import InputError
 from stream.rules.diff import RuleDiff, diff_rules, fate_note, origin_note
 from stream.rules.rule import Rule, rules_from_payload
 from stream.rules.simplify import simplify
-from stream.rules.text import format_number, rule_conditions_text
+from stream.rules.text import CAUTION_IN_FULL, format_number, rule_conditions_text
 from stream.run.atomic import write_atomic
 from stream.run.snapshots import SnapshotStore
 
@@ -35,11 +35,6 @@ from .rule_sources import header_of
 from .run_logs import event_path_text, read_events, read_metrics
 from .svg_plot import PALETTE, Marker, Series, bar_chart, line_chart
 
-SAFETY = ("Learned rules describe what the data showed so far. They are advisory: they are "
-          "not safety interlocks, alarms of record or a substitute for engineering "
-          "judgement. Do not use them to override or bypass protective systems. Defer to "
-          "the site's safety systems, local codes and regulations, and licensed "
-          "professional practice.")
 
 CHURN_COLORS = {"new": "#2a8a4a", "gone": "#b8323a", "changed": "#d9731a"}
 MAX_CHURN_SNAPSHOTS = 200
@@ -360,7 +355,7 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
            + f". Latest snapshot: #{last_doc['sequence']} at {last_doc['records']:,} records"
            + (f", data up to {escape(str(last_doc['data_time']))}"
               if last_doc.get("data_time") else "") + ".</p>",
-           f'<div class="safety" id="safety"><b>Safety.</b> {escape(SAFETY)}</div>',
+           f'<div class="safety" id="safety"><b>Safety.</b> {escape(CAUTION_IN_FULL)}</div>',
            _cards(last, last_doc, len(data.events))]
     if not from_log:
         out.append('<p class="meta">No metrics log was given: the charts use the '
@@ -392,7 +387,7 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
                '<p class="meta">No drift events' + (" were recorded." if "drift events"
                                                    in data.sources else
                                                    " file was given.") + "</p>")
-    out.append(f'<h2>Safety</h2><p>{escape(SAFETY)}</p>')
+    out.append(f'<h2>Safety</h2><p>{escape(CAUTION_IN_FULL)}</p>')
     out.append('<script type="application/json" id="report-data">'
                + json.dumps(plotted, allow_nan=False).replace("</", "<\\/") + "</script>")
     out.append("</main></body></html>")

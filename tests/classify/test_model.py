@@ -250,7 +250,7 @@ def test_bayes_leaves_agree_with_river_on_numeric_features(leaf_model, river_lea
     # do not change the splits, so the trees are the same. Predictions differ on purpose
     # where a class present at a leaf has no spread on a feature yet: river then leaves
     # that class's density out (a density of 1, which lets it win for lack of evidence);
-    # sapwood uses the leaf's pooled variance (observers.gaussian_fallback_density).
+    # sapwood uses the leaf's pooled variance (splits.gaussian_fallback_density).
     # Measured: 1.0 % (nb) and 0.5 % (nba) of predictions differ; accuracy 0.8718 vs
     # 0.8645 (nb) and 0.8715 vs 0.8695 (nba), sapwood first.
     s = _synthetic("sea", 20_000, variant=0, noise=0.1, seed=7)
@@ -277,17 +277,17 @@ def _root_split(model: TreeClassifier) -> tuple[int, float, int]:
 # functions 0 (age < 40 or >= 60: two equally good cuts) and SEA (x0 and x1 symmetric) are
 # left out because the batch optimum itself is a coin toss there.
 @pytest.mark.parametrize("function", [1, 7])
-@pytest.mark.parametrize("observer", ["gaussian", "histogram"])
+@pytest.mark.parametrize("splits", ["gaussian", "histogram"])
 @pytest.mark.parametrize("criterion", ["info_gain", "gini"])
-def test_root_split_matches_sklearn_on_a_stationary_stream(function, observer, criterion):
+def test_root_split_matches_sklearn_on_a_stationary_stream(function, splits, criterion):
     # source: scikit-learn DecisionTreeClassifier(max_depth=1) fitted on the records the root
-    # had seen when it split. Tolerance: the Gaussian observer chooses among 10 evenly spaced
+    # had seen when it split. Tolerance: the Gaussian split statistic chooses among 10 evenly spaced
     # candidates, so it can miss the batch optimum by up to one spacing (max - min) / 11;
     # the histogram's 32 quantile bins are narrower than that on these uniform features.
     # Measured |d threshold| / spacing at seed 11: Gaussian 0.06-0.36, histogram 0.00-0.46
     # (info gain over seeds 1-8: Gaussian 0.10-0.12, histogram 0.01-0.28).
     s = _synthetic("agrawal", 10_000, classification_function=function, seed=11)
-    model, _ = _sapwood(s, numeric_observer=observer, criterion=criterion)
+    model, _ = _sapwood(s, numeric_splits=splits, criterion=criterion)
     feature, threshold, seen = _root_split(model)
     sk = DecisionTreeClassifier(criterion="entropy" if criterion == "info_gain" else "gini",
                                 max_depth=1).fit(s.X[:seen], s.y[:seen])
@@ -301,14 +301,14 @@ def test_root_split_matches_sklearn_on_a_stationary_stream(function, observer, c
     assert whole.tree_.feature[0] == feature
 
 
-@pytest.mark.parametrize("observer", ["gaussian", "histogram"])
-def test_root_split_matches_sklearn_on_phishing(observer):
+@pytest.mark.parametrize("splits", ["gaussian", "histogram"])
+def test_root_split_matches_sklearn_on_phishing(splits):
     # source: river's bundled Phishing data (1250 rows) and scikit-learn's stump on the
     # records the root had seen. The winning feature takes the values {0, 0.5, 1}, where any
     # threshold between two values is the same test, so the check is that the two thresholds
     # send the same records left (measured: sapwood 0.545 / 0.5, sklearn 0.75).
     s = _bundled("Phishing")
-    model, _ = _sapwood(s, numeric_observer=observer)
+    model, _ = _sapwood(s, numeric_splits=splits)
     feature, threshold, seen = _root_split(model)
     sk = DecisionTreeClassifier(criterion="entropy", max_depth=1).fit(s.X[:seen], s.y[:seen])
     assert feature == sk.tree_.feature[0]
@@ -510,18 +510,18 @@ def _check_batches(which, cuts, config) -> None:
 
 _batch_settings = dict(which=st.sampled_from(["agrawal", "led"]),
                        cuts=st.lists(st.integers(1, MIXED_N - 1), max_size=60, unique=True),
-                       observer=st.sampled_from(["gaussian", "histogram"]),
+                       splits=st.sampled_from(["gaussian", "histogram"]),
                        leaf_model=st.sampled_from(["majority", "naive_bayes", "adaptive"]),
                        criterion=st.sampled_from(["info_gain", "gini"]))
 
 
 @settings(max_examples=50, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(**_batch_settings)
-def test_batches_give_the_same_predictions_and_tables(which, cuts, observer, leaf_model,
+def test_batches_give_the_same_predictions_and_tables(which, cuts, splits, leaf_model,
                                                       criterion):
     # source: the test-then-train semantics (each record is scored by the tree learned
     # from the records before it) do not depend on how a stream is cut into batches
-    _check_batches(which, cuts, dict(numeric_observer=observer, leaf_model=leaf_model,
+    _check_batches(which, cuts, dict(numeric_splits=splits, leaf_model=leaf_model,
                                      criterion=criterion, **MIXED_SETTINGS, **PLAIN))
 
 
@@ -531,11 +531,11 @@ _DETECTORS = sorted(set(DETECTORS) - {"off"})
 @settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(**_batch_settings, detector=st.sampled_from(_DETECTORS))
 def test_batches_with_drift_detectors_give_the_same_predictions_and_tables(
-        which, cuts, observer, leaf_model, criterion, detector):
+        which, cuts, splits, leaf_model, criterion, detector):
     # with drift watching too: alternates start, swap and drop, and dead node ids are
     # recycled, at the same records whatever the batch cuts (the kernel returns before it
     # recycles, so recycling happens at a fixed record), so node ids and tables agree
-    _check_batches(which, cuts, dict(numeric_observer=observer, leaf_model=leaf_model,
+    _check_batches(which, cuts, dict(numeric_splits=splits, leaf_model=leaf_model,
                                      criterion=criterion, detector=detector,
                                      **MIXED_SETTINGS))
 
@@ -545,7 +545,7 @@ def test_the_mixed_streams_exercise_what_they_claim(which):
     # guards the property test above: missing values, a multiway split (Agrawal) or a class
     # arriving after the tree has grown (LED), and a tree that actually splits
     s, kinds, known = _mixed_stream(which)
-    model, _ = _one_by_one(which, numeric_observer="gaussian", leaf_model="adaptive",
+    model, _ = _one_by_one(which, numeric_splits="gaussian", leaf_model="adaptive",
                            criterion="info_gain", **MIXED_SETTINGS, **PLAIN)
     assert np.isnan(s.X).any()
     assert model.counters()["splits"] >= 2
@@ -601,7 +601,7 @@ def test_scores_before_any_label_are_minus_one():
 
 @pytest.mark.parametrize("leaf_model", ["majority", "naive_bayes", "adaptive"])
 def test_confidence_is_a_probability_when_categories_start_missing(leaf_model):
-    # KNOWN BUG (fails for naive_bayes at the time of writing): observers.
+    # KNOWN BUG (fails for naive_bayes at the time of writing): splits.
     # category_log_likelihood returns log((0 + 1) / (0 + n_codes)) = log(1/0) = +inf when a
     # categorical feature has had no value yet anywhere (fmap FM_SEEN = 0, so n_codes = 0)
     # and the record being scored has one; naive_bayes_scores then computes
@@ -802,13 +802,13 @@ def test_memory_cap_holds_when_a_new_category_code_shrinks_the_cap():
         f"{model.n_active_leaves} active leaves after the cap fell to 3")
 
 
-# ================================================================ h. histogram observer
+# ================================================================ h. histogram split statistic
 
 @pytest.mark.parametrize("seed", range(5))
 def test_histogram_finds_a_skewed_cut_the_gaussian_candidates_miss(seed):
     # source: scipy.stats.lognorm gives the true cut (the 30 % quantile of lognormal(0, 1.5))
     # of a stream labelled x > cut with 5 % label noise, plus a uniform irrelevant feature.
-    # The Gaussian observer's candidates are evenly spaced between the observed min and max:
+    # The Gaussian split statistic's candidates are evenly spaced between the observed min and max:
     # with a long right tail the nearest lies far above the cut. The histogram's bins sit at
     # quantiles of the first 128 values, so an edge lies near the cut.
     # Measured over seeds 0-4: histogram F(threshold) 0.276-0.306; Gaussian 0.66-0.98 (or
@@ -820,16 +820,16 @@ def test_histogram_finds_a_skewed_cut_the_gaussian_candidates_miss(seed):
     y = ((x > cut) ^ (rng.random(n) < 0.05)).astype(np.int32)
     X = np.c_[x, rng.random(n)]
     found = {}
-    for observer in ("gaussian", "histogram"):
+    for splits in ("gaussian", "histogram"):
         model = TreeClassifier(["x", "u"], ["numeric"] * 2,
-                               _settings(numeric_observer=observer))
+                               _settings(numeric_splits=splits))
         right = _learn(model, X, y, ["0", "1"]).pred == y
         feature, threshold, seen = _root_split(model)
-        found[observer] = (feature, scipy_stats.lognorm.cdf(threshold, shape), seen, right)
+        found[splits] = (feature, scipy_stats.lognorm.cdf(threshold, shape), seen, right)
     feature, level, _, hist_right = found["histogram"]
     assert feature == 0 and abs(level - q) <= 0.05, f"histogram cut at quantile {level:.3f}"
     feature, level, seen, gauss_right = found["gaussian"]
-    # why the Gaussian observer cannot: its nearest candidate, from the records it had seen
+    # why the Gaussian split statistic cannot: its nearest candidate, from the records it had seen
     lo, hi = x[:seen].min(), x[:seen].max()
     candidates = lo + (hi - lo) * np.arange(1, 11) / 11
     assert np.min(np.abs(scipy_stats.lognorm.cdf(candidates, shape) - q)) > 0.2

@@ -445,7 +445,7 @@ def test_rules_of_directory_snapshot_file_and_model_agree(learned, capsys):
         code, out, err = run_main(["rules", path], capsys)
         assert code == 0, err
         texts[name] = out
-        code, out, err = run_main(["rules", path, "--format", "json"], capsys)
+        code, out, err = run_main(["rules", path, "--form", "json"], capsys)
         assert code == 0, err
         payloads[name] = json.loads(out)
     assert texts["dir"] == texts["file"]
@@ -464,9 +464,9 @@ def test_an_earlier_snapshot_equals_a_model_learned_on_that_prefix(agrawal, lear
     head = write_csv(tmp_path / "head.csv", prefix)
     model = tmp_path / "head.sapwood"
     assert run_main(["learn", head, "--target", TARGET, "--save", model, "-q"], capsys)[0] == 0
-    _, from_model, _ = run_main(["rules", model, "--format", "json"], capsys)
+    _, from_model, _ = run_main(["rules", model, "--form", "json"], capsys)
     _, from_snapshot, _ = run_main(["rules", learned / "snaps" / "snapshot-000002.json",
-                                    "--format", "json"], capsys)
+                                    "--form", "json"], capsys)
     a, b = json.loads(from_model), json.loads(from_snapshot)
     assert a["records"] == b["records"] == 6_000
     assert a["rules"] == b["rules"]
@@ -474,9 +474,9 @@ def test_an_earlier_snapshot_equals_a_model_learned_on_that_prefix(agrawal, lear
 
 def test_json_rules_round_trip(learned, tmp_path, capsys):
     model = learned / "model.sapwood"
-    _, first, _ = run_main(["rules", model, "--format", "json"], capsys)
+    _, first, _ = run_main(["rules", model, "--form", "json"], capsys)
     (tmp_path / "rules.json").write_text(first)
-    code, second, err = run_main(["rules", tmp_path / "rules.json", "--format", "json"],
+    code, second, err = run_main(["rules", tmp_path / "rules.json", "--form", "json"],
                                  capsys)
     assert code == 0, err
     assert json.loads(second) == json.loads(first)
@@ -487,11 +487,11 @@ def test_json_rules_round_trip(learned, tmp_path, capsys):
 
 def test_top_keeps_the_rules_covering_the_most_records(learned, capsys):
     model = learned / "model.sapwood"
-    _, everything, _ = run_main(["rules", model, "--format", "json"], capsys)
+    _, everything, _ = run_main(["rules", model, "--form", "json"], capsys)
     rules = json.loads(everything)["rules"]
     assert len(rules) > 3
     widest = sorted(rules, key=lambda r: -r["coverage"])[:3]
-    code, top, _ = run_main(["rules", model, "--format", "json", "--top", "3"], capsys)
+    code, top, _ = run_main(["rules", model, "--form", "json", "--top", "3"], capsys)
     assert code == 0
     shown = json.loads(top)
     assert {r["id"] for r in shown["rules"]} == {r["id"] for r in widest}

@@ -296,7 +296,7 @@ def test_children_start_from_their_side_of_the_split():
     assert np.all(scored.leaf[:split_at] == 0) and np.all(scored.leaf[split_at:] > 0)
 
 
-# ================================================================ criteria and observers
+# ================================================================ criteria and split statistics
 
 def _stats(values):
     values = np.asarray(values, float)
@@ -350,7 +350,7 @@ def test_ratio_test_uses_the_hoeffding_bound_for_range_one():
     assert split_confident(1.0, 0.99, 3224.0, 1e-7, 0.05)
 
 
-def test_quantile_observer_holds_exact_bin_statistics():
+def test_quantile_split_statistic_holds_exact_bin_statistics():
     # by hand: every value in (edge[e-1], edge[e]] lands in bin e, statistics exact
     settings = RegressionSettings(bins=8)
     t = allocate(settings, ["numeric"], slots=1)

@@ -291,13 +291,13 @@ def test_command_text_json_markdown(run):
     text = runner.invoke(diff_command, [str(run.snapshots), "--from", "1"])
     assert text.exit_code == 0, text.output
     assert text.output.startswith("Rule changes for approved\n  before: snapshot 1 (")
-    as_json = runner.invoke(diff_command, [str(run.snapshots), "--format", "json"])
+    as_json = runner.invoke(diff_command, [str(run.snapshots), "--form", "json"])
     assert as_json.exit_code == 0
     payload = json.loads(as_json.output)
     entries = SnapshotStore(run.snapshots).entries()
     assert payload["new"]["sequence"] == entries[-1]["sequence"]
     assert payload["old"]["sequence"] == entries[-2]["sequence"]
-    markdown = runner.invoke(diff_command, [str(run.snapshots), "--from", "1", "--format",
+    markdown = runner.invoke(diff_command, [str(run.snapshots), "--from", "1", "--form",
                                             "markdown"])
     assert markdown.exit_code == 0 and markdown.output.startswith("### Changes since snapshot 1")
     files = [str(run.snapshots / entries[0]["json"]), str(run.snapshots / entries[-1]["json"])]
@@ -311,7 +311,7 @@ def test_command_refuses_a_negative_shift(run):
     result = CliRunner().invoke(diff_command, [str(run.snapshots), "--min-shift", "-1"])
     assert isinstance(result.exception, ConfigError)
     assert str(result.exception) == ("--min-shift must be a number of percentage points >= 0, "
-                                     "got -1.0")
+                                     "got -1")
 
 
 def test_origin_and_fate_wording():

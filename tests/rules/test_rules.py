@@ -128,7 +128,7 @@ def rules_json(learned) -> dict:
     where, _ = learned
     buffer = io.StringIO()
     with contextlib.redirect_stdout(buffer), pytest.raises(SystemExit) as stop:
-        main(["rules", str(where / "model.sapwood"), "--format", "json"])
+        main(["rules", str(where / "model.sapwood"), "--form", "json"])
     assert stop.value.code == 0
     return json.loads(buffer.getvalue())
 
@@ -295,7 +295,7 @@ R7   IF   10 < temp <= 20.125
      THEN status = ok
           confidence 75.0%, coverage 4.3%, 8 records (ok 6 / fault 2)
 
-Learned rules describe the data seen so far. They are advisory, not safety interlocks: \
+Learned rules describe what the data showed so far. They are advisory, not safety interlocks: \
 defer to site safety systems, local codes and licensed practice.
 """
 

@@ -244,7 +244,7 @@ def test_a_missing_model_exits_2(tmp_path, capsys):
 
 def test_a_snapshot_is_not_a_model_for_scoring(saved, data, tmp_path, capsys):
     snapshot = tmp_path / "rules.json"
-    code, out, _ = _run_out(["rules", saved[0], "--format", "json"], capsys)
+    code, out, _ = _run_out(["rules", saved[0], "--form", "json"], capsys)
     assert code == 0 and json.loads(out)["rules"]
     snapshot.write_text(out)
     sample = write_csv(tmp_path / "sample.csv", data[2][:10])

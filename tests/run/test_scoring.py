@@ -30,6 +30,7 @@ from river.datasets import synth
 from stream.classify.settings import TreeSettings
 from stream.cli.main import main
 from stream.rules.rule import rule_id
+from stream.rules.text import CAUTION
 from stream.run.engine import run_learn
 from stream.run.job import LearnJob
 from stream.run.saved_model import load_model
@@ -94,6 +95,11 @@ def run_main(args, capsys) -> tuple[int, str, str]:
     with pytest.raises(SystemExit) as stop:
         main([str(a) for a in args])
     out, err = capsys.readouterr()
+    if stop.value.code == 0 and args[0] == "score":
+        # the report, then the caution that ends every output of rules for people
+        report, caution = err.rstrip("\n").rsplit("\n", 1)
+        assert caution == CAUTION
+        err = report + "\n"
     return stop.value.code, out, err
 
 

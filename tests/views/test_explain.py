@@ -137,7 +137,7 @@ def test_explain_command_with_a_model(run):
     assert first.startswith(f"record 1: {TARGET} = ") and ", by rule R" in first
     assert "path from the root:" in result.stdout
     assert result.stdout.rstrip().endswith("licensed practice.")
-    as_json = runner.invoke(explain, [str(run.model), str(run.holdout), "--output", "json",
+    as_json = runner.invoke(explain, [str(run.model), str(run.holdout), "--form", "json",
                                       "--limit", "5"])
     rows = [json.loads(line) for line in as_json.stdout.splitlines()]
     scored = read_csv_rows(run.scored)[:5]
@@ -153,7 +153,7 @@ def test_explain_command_with_a_snapshot(run):
     runner = CliRunner()
     record = {name: "1" for name in FEATURES}
     result = runner.invoke(explain, [str(run.snapshots), "--record", json.dumps(record),
-                                     "--output", "json"])
+                                     "--form", "json"])
     assert result.exit_code == 0, result.output
     answer = json.loads(result.output.splitlines()[0])
     expected = rules_that_hold(_last_snapshot(run)["rules"], record)

@@ -91,7 +91,7 @@ def test_frame_shows_the_latest_metrics_events_and_rules(run, tmp_path):
     document = state.snapshot
     ranked = sorted(document["rules"], key=lambda r: (-r["coverage"], r["id"]))
     assert listed == [r["id"] for r in ranked][:len(listed)] and listed
-    assert frame[-1].startswith("Rules are advisory")
+    assert frame[-1].startswith("Learned rules describe what the data showed so far")
     assert not state.refresh()  # nothing new
 
 
@@ -182,4 +182,4 @@ def test_watch_command_once(run, tmp_path):
     assert result.output.startswith("sapwood watch | target approved | ")
     assert "drift events: 3 so far, latest 3:" in result.output
     refused = CliRunner().invoke(watch_command, [str(run.snapshots), "--every", "0"])
-    assert str(refused.exception) == "--every must be a number of seconds > 0, got 0.0"
+    assert str(refused.exception) == "--every must be a number of seconds > 0, got 0"

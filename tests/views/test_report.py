@@ -23,15 +23,15 @@ import pytest
 from click.testing import CliRunner
 from hypothesis import given
 from hypothesis import strategies as st
-from tests.operator_runs import TARGET, read_csv_rows, shared_run
 from sklearn.metrics import accuracy_score, cohen_kappa_score
+from tests.operator_runs import TARGET, read_csv_rows, shared_run
 
 from stream.cli.views import report as report_command
 from stream.rules.diff import diff_rules
 from stream.rules.rule import rules_from_payload
+from stream.rules.text import CAUTION_IN_FULL
 from stream.run.snapshots import SnapshotStore
-from stream.views.report import (SAFETY, churn_table, load_report_data, render_report,
-                                 write_report)
+from stream.views.report import churn_table, load_report_data, render_report, write_report
 from stream.views.rule_sources import header_of
 from stream.views.run_logs import read_metrics
 from stream.views.svg_plot import nice_domain, nice_ticks, thin_points
@@ -199,7 +199,7 @@ def test_rules_diff_and_safety_sections(run, page):
                         header_of(last)).churn()
     assert (f"<b>{counts['added']}</b> new, <b>{counts['removed']}</b> gone, "
             f"<b>{counts['changed']}</b> changed") in page
-    assert page.count(SAFETY.replace("'", "&#x27;")) == 2
+    assert page.count(CAUTION_IN_FULL.replace("'", "&#x27;")) == 2
     assert "<h2>Drift events (3)</h2>" in page
 
 
