@@ -1,13 +1,16 @@
 """TreeClassifier: the Python face of the compiled Hoeffding tree.
 
 >>> import numpy as np
->>> from stream.classify.model import TreeClassifier
+>>> from stream.classify import TreeClassifier, TreeSettings
 >>> X = np.array([[0.1], [0.9], [0.2], [0.8]])
 >>> y = np.array([0, 1, 0, 1], dtype=np.int32)
->>> model = TreeClassifier(["pressure"], ["numeric"])
+>>> model = TreeClassifier(["pressure"], ["numeric"], TreeSettings(leaf_model="majority"))
 >>> scored = model.learn(X, y, classes=["low", "high"])
->>> scored.pred.tolist()          # each record is scored before it is learned
-[-1, 0, 0, 0]
+>>> scored.pred.tolist()      # each record is scored before it is learned (-1: no guess yet)
+[-1, 0, 1, 0]
+
+The third record meets a tie (one "low", one "high"): ties go to the label that sorts
+first, "high" (code 1).
 """
 
 from __future__ import annotations

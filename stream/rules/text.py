@@ -17,6 +17,19 @@ CAUTION_IN_FULL = (CAUTION + " Do not use them to override or bypass protective 
 """The caution where there is room for it (the HTML report)."""
 
 
+def drift_words(rule: Rule) -> str:
+    """A rule's drift state in the words every view uses: ``""`` when stable, ``watching
+    (alternate growing)`` while an alternate subtree grows on its path, ``replaced at
+    record N`` when its part of the tree was swapped for an alternate."""
+    state = getattr(rule, "drift", "stable")
+    if state == "watching":
+        return "watching (alternate growing)"
+    if state == "replaced":
+        at = getattr(rule, "replaced_at", None)
+        return f"replaced at record {_count(at)}" if isinstance(at, int) else "replaced"
+    return ""
+
+
 def rule_conditions_text(rule: Rule) -> str:
     """A rule's conditions on one line: ``door = open AND ambient_c > 27.9``; ``always``
     when there are none."""
@@ -131,10 +144,8 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
             extra.append("naive Bayes refines within the rule")
         if not r.active:
             extra.append("not growing")
-        if r.drift == "watching":
-            extra.append("drift: alternate growing")
-        elif r.drift == "replaced":
-            extra.append(f"drift: regrown at record {_count(r.replaced_at)}")
+        if drift_words(r):
+            extra.append(f"drift: {drift_words(r)}")
         if extra:
             lines.append(f"{pad}     " + "; ".join(extra))
         lines.append("")

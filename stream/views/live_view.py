@@ -238,8 +238,8 @@ def render_frame(state: WatchState, width: int = 100, height: int = 40, now: str
         class_width = max(len(str(r.predict)) for r in show)
         for r in show:
             # before the conditions, which a narrow terminal cuts off
-            state = {"watching": "[alternate growing] ",
-                     "replaced": "[regrown] "}.get(getattr(r, "drift", "stable"), "")
+            state = {"watching": "[watching] ",
+                     "replaced": "[replaced] "}.get(getattr(r, "drift", "stable"), "")
             lines.append(f"  {r.id:<{id_width}}  {r.predict!s:<{class_width}} "
                          f"{_pct(r.confidence)} conf {_pct(r.coverage)} cov  {state}"
                          f"{rule_conditions_text(r).replace('  (', ' (')}")

@@ -27,7 +27,8 @@ from stream.errors import InputError
 from stream.rules.diff import RuleDiff, diff_rules, fate_note, origin_note
 from stream.rules.rule import Rule, rules_from_payload
 from stream.rules.simplify import simplify
-from stream.rules.text import CAUTION_IN_FULL, format_number, rule_conditions_text
+from stream.rules.text import (CAUTION_IN_FULL, drift_words, format_number,
+                               rule_conditions_text)
 from stream.run.atomic import write_atomic
 from stream.run.snapshots import SnapshotStore
 
@@ -189,13 +190,7 @@ def _cards(last: dict, snapshot: dict, event_count: int) -> str:
 
 
 def _drift_text(rule: Rule) -> str:
-    state = getattr(rule, "drift", "stable")
-    if state == "watching":
-        return "alternate growing"
-    if state == "replaced":
-        at = getattr(rule, "replaced_at", None)
-        return f"regrown at record {at:,}" if isinstance(at, int) else "regrown"
-    return ""
+    return drift_words(rule)
 
 
 def _rules_table(rules: Sequence[Rule], target: str, sources: dict | None = None) -> str:
