@@ -40,6 +40,7 @@ from stream.errors import ConfigError, InputError
 
 from .base import Reject
 from .delimited import raw_text
+from .text import may_hold_surrogates, valid_objects
 
 log = logging.getLogger("sapwood.connectors")
 
@@ -462,6 +463,8 @@ def _json_records(texts: list[bytes]):
                 bad.append((j, key, raw_text(value.encode()),
                             "is a nested value (list or object)"))
             continue
+        if may_hold_surrogates(text):
+            obj = valid_objects([obj])[0]
         objects.append(obj)
         good.append(j)
     frame = pd.DataFrame(objects) if objects else _empty_frame()
@@ -480,12 +483,15 @@ def _json_fast(texts: list[bytes]) -> list[dict] | None:
     stripped = [t.strip() for t in texts]
     if not all(t[:1] == b"{" and t[-1:] == b"}" for t in stripped):
         return None
+    joined = b"[" + b"\n,".join(stripped) + b"]"
     try:
-        objects = json.loads(b"[" + b"\n,".join(stripped) + b"]")
+        objects = json.loads(joined)
     except ValueError:  # JSONDecodeError and UnicodeDecodeError
         return None
     if len(objects) != len(texts) or set(map(type, objects)) != {dict}:
         return None
+    if may_hold_surrogates(joined):
+        objects = valid_objects(objects)
     if any(type(v) in _NESTED for obj in objects for v in obj.values()):
         return None
     return objects

@@ -49,6 +49,7 @@ comment lines, escape characters or other quote characters: RFC 4180 has none.
 
 from __future__ import annotations
 
+import csv
 import functools
 import io
 import os
@@ -308,10 +309,11 @@ def _gather(buf, starts, stops, out):  # pragma: no cover - compiled
     return o
 
 
-def _crlf_only(a: np.ndarray) -> bool:
-    """True when every CR in the bytes starts a CRLF (a lone CR also ends a line)."""
-    carriage = int(np.count_nonzero(a == 13))
-    return carriage == int(np.count_nonzero((a[:-1] == 13) & (a[1:] == 10)))
+def _crlf_only(chunk: bytes) -> bool:
+    """True when every CR in the bytes starts a CRLF (a lone CR also ends a line).
+
+    ``bytes.count`` scans without the temporary arrays a numpy comparison makes."""
+    return chunk.count(b"\r") == chunk.count(b"\r\n")
 
 
 class _Records:
@@ -444,6 +446,7 @@ class DelimitedReader:
         elif len(names) != int(rec.fields[0]):
             raise InputError(f"cannot read {self.name!r}: the header on line "
                              f"{int(rec.lines[0])} could not be split into fields")
+        _refuse_repeated_names(header, self.delimiter, self.name, int(rec.lines[0]))
         self._columns = [str(c) for c in names]
         self.header_line = int(rec.lines[0])
         self._note_used(src.pending[:int(rec.nexts[0])])
@@ -511,12 +514,12 @@ class DelimitedReader:
                 continue
             want = 0
             first = src.line
-            a = np.frombuffer(chunk, np.uint8)
-            if b'"' not in chunk and (b"\r" not in chunk or _crlf_only(a)):
+            if b'"' not in chunk and (b"\r" not in chunk or _crlf_only(chunk)):
                 # no quotes, LF or CRLF: every LF ends a record, so the boundary is known now
-                breaks = int(np.count_nonzero(a == 10))
+                breaks = chunk.count(b"\n")
                 records = breaks + (0 if chunk.endswith(b"\n") else 1)
                 if records > self._batch_rows:
+                    a = np.frombuffer(chunk, np.uint8)
                     end = int(np.flatnonzero(a == 10)[self._batch_rows - 1]) + 1
                     src.give_back(chunk[end:])
                     chunk, breaks, records, final = chunk[:end], self._batch_rows, \
@@ -657,3 +660,21 @@ class TsvReader(DelimitedReader):
 
     delimiter = "\t"
     extensions = (".tsv",)
+
+
+def _refuse_repeated_names(header: bytes, delimiter: str, name: str, line: int) -> None:
+    """A header that names one column twice is refused: pandas would rename the second
+    (``y`` -> ``y.1``), and a target or feature would silently be the wrong column."""
+    text = header.decode("utf-8", "replace").lstrip("\ufeff")
+    fields = next(csv.reader(io.StringIO(text), delimiter=delimiter), [])
+    seen: dict[str, list[int]] = {}
+    for position, field in enumerate(fields, start=1):
+        seen.setdefault(field, []).append(position)
+    # empty names are told apart by position ("Unnamed: 2"), as pandas names them
+    repeated = {field: where for field, where in seen.items() if len(where) > 1 and field}
+    if repeated:
+        listed = "; ".join(f"{field!r} in columns {', '.join(map(str, where))}"
+                           for field, where in repeated.items())
+        raise InputError(f"cannot read {name!r}: the header on line {line} names a "
+                         f"column more than once ({listed}); give each column its own "
+                         f"name")

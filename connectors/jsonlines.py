@@ -28,6 +28,7 @@ from stream.errors import InputError
 
 from .base import RawBatch, Reject
 from .delimited import MARK_BYTES, MAX_RECORD_BYTES, LineStream, raw_text
+from .text import may_hold_surrogates, valid_objects
 
 _NESTED = (list, dict)
 _MIN_BLOCK = 1 << 12
@@ -134,12 +135,15 @@ class JsonLinesReader:
     def _decode_fast(texts: list[bytes]) -> list[dict] | None:
         if not all(text[0] == 0x7B and text[-1] == 0x7D for text in texts):  # { ... }
             return None
+        joined = b"[" + b"\n,".join(texts) + b"]"
         try:
-            objects = json.loads(b"[" + b"\n,".join(texts) + b"]")
+            objects = json.loads(joined)
         except ValueError:  # JSONDecodeError and UnicodeDecodeError
             return None
         if len(objects) != len(texts) or set(map(type, objects)) != {dict}:
             return None
+        if may_hold_surrogates(joined):
+            objects = valid_objects(objects)
         joined_brackets = sum(text.count(b"{") for text in texts)
         if joined_brackets != len(texts) or any(b"[" in text for text in texts):
             # a brace or bracket beyond the outer ones: look for nested values
@@ -172,6 +176,8 @@ class JsonLinesReader:
                     rejects.append(Reject(self.name, line, key, raw_text(value.encode()),
                                           "is a nested value (list or object)"))
                 continue
+            if may_hold_surrogates(text):
+                obj = valid_objects([obj])[0]
             objects.append(obj)
             keep.append(i)
         frame = pd.DataFrame(objects) if objects else pd.DataFrame(index=pd.RangeIndex(0))

@@ -12,6 +12,13 @@ from typing import Any
 
 from .errors import ConfigError
 
+#: Largest magnitude a feature or regression target may have. The trees keep sums of
+#: squares of the values they see (variances for splits and leaf models); a value above
+#: about 1.3e154 squares to infinity in float64 and poisons every statistic it reaches.
+#: 1e100 leaves room for 1e100 records' worth of such squares. Larger values are refused
+#: at the edge (quarantined by a run, a ConfigError from the library).
+VALUE_LIMIT = 1e100
+
 
 def _fail(what: str, requirement: str, value: Any) -> ConfigError:
     return ConfigError(f"{what} must be {requirement}, got {value!r}")

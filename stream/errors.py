@@ -1,7 +1,7 @@
 """Every exception sapwood raises on purpose, each with the exit code the CLI maps it to.
 
 Exit codes (a contract other tools rely on): 0 done, 1 bad usage or configuration,
-2 input could not be read. Messages say *where*: the source, the line or offset, the
+2 input could not be read, 3 a result could not be written (the summary still is). Messages say *where*: the source, the line or offset, the
 field and the bad value, e.g. ``line 1042, field 'supply_temp': 'abc' is not a number``.
 """
 
@@ -10,6 +10,7 @@ from __future__ import annotations
 EXIT_OK = 0
 EXIT_USAGE = 1
 EXIT_INPUT = 2
+EXIT_OUTPUT = 3
 
 
 class SapwoodError(Exception):
@@ -38,3 +39,16 @@ class RecordError(InputError):
 
 class ModelFileError(InputError):
     """A saved model, snapshot or checkpoint is missing, corrupt or of another version."""
+
+
+class OutputError(SapwoodError):
+    """The run learned, but a result (saved model, checkpoint) could not be written.
+
+    ``summary`` holds the run's summary, which is always produced; ``cause`` the error.
+    """
+
+    exit_code = EXIT_OUTPUT
+
+    def __init__(self, message: str, summary: dict | None = None) -> None:
+        super().__init__(message)
+        self.summary = summary

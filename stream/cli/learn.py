@@ -8,9 +8,10 @@ import time
 
 import click
 
-from stream.errors import ConfigError
+from stream.errors import ConfigError, OutputError
 from stream.rules.text import CAUTION
 
+from .output import echo
 from .config import config_options, settings_in_force
 from .options import (GroupedCommand, drift_options, feed_options, input_options,
                       label_options, output_options, parse_kinds, settings_given, stack,
@@ -41,15 +42,21 @@ def learn(sources, **kw) -> None:
     take_renamed(kw, "numeric_splits")
     ctx.params["numeric_splits"] = kw["numeric_splits"]
     if kw.pop("print_config"):
-        click.echo(settings_in_force(ctx), nl=False)
+        echo(settings_in_force(ctx), nl=False)
         return
     quiet = kw.pop("quiet")
     job = learn_job(list(sources), kw)
     progress = _Progress()
-    summary = LearnRun(job, progress=progress).run()
+    try:
+        summary = LearnRun(job, progress=progress).run()
+    except OutputError as exc:   # learned, but a result could not be written
+        progress.done()
+        if not quiet and exc.summary is not None:
+            echo(closing_report(exc.summary), err=True)
+        raise
     progress.done()
     if not quiet:
-        click.echo(closing_report(summary), err=True)
+        echo(closing_report(summary), err=True)
 
 
 def learn_job(sources: list[str], kw: dict):

@@ -16,6 +16,7 @@ import dataclasses
 
 import numpy as np
 
+from stream.checks import VALUE_LIMIT
 from stream.errors import ConfigError, ModelFileError
 from stream.tree.upkeep import DriftEvent, TableOps, TableUpkeep
 from stream.tree.views import check_features
@@ -77,10 +78,10 @@ class TreeRegressor(TableUpkeep):
         y = np.ascontiguousarray(y, dtype=np.float64)
         if y.ndim != 1 or y.shape[0] != X.shape[0]:
             raise ConfigError(f"y must have {X.shape[0]} values, got shape {y.shape}")
-        bad = np.flatnonzero(~np.isfinite(y))
+        bad = np.flatnonzero(~(np.abs(y) <= VALUE_LIMIT))
         if bad.size:
-            raise ConfigError(f"target values must be finite numbers, got {float(y[bad[0]])!r} "
-                              f"at row {int(bad[0])}")
+            raise ConfigError(f"target values must be finite numbers of magnitude at most "
+                              f"{VALUE_LIMIT:g}, got {float(y[bad[0]])!r} at row {int(bad[0])}")
         self._fit_categories(X)
         n = X.shape[0]
         scored = ScoredValues(np.empty(n), np.empty(n, np.int32))
@@ -101,10 +102,12 @@ class TreeRegressor(TableUpkeep):
         if X.ndim != 2 or X.shape[1] != len(self.feature_names):
             raise ConfigError(f"X must have {len(self.feature_names)} columns, got shape "
                               f"{X.shape}")
-        infinite = np.isinf(X)
+        with np.errstate(invalid="ignore"):
+            infinite = np.abs(X) > VALUE_LIMIT
         if infinite.any():
             row, col = np.argwhere(infinite)[0]
-            raise ConfigError(f"values must be finite numbers or NaN (missing), got "
+            raise ConfigError(f"values must be finite numbers of magnitude at most "
+                              f"{VALUE_LIMIT:g} or NaN (missing), got "
                               f"{float(X[row, col])!r} in field {self.feature_names[col]!r} at row "
                               f"{int(row)}")
         if self._category_columns.size:

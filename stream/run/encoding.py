@@ -3,8 +3,9 @@
 Inside: the :class:`EncodedBatch` the learner consumes and the stateful :class:`Encoder`
 that assigns category and class codes in first-seen order and can be saved and restored.
 What counts as missing, a number, a time or a label is :mod:`stream.run.values`; ``inf``
-parses as a number but is refused here as "is not a finite number": no split statistic
-survives an infinite value.
+parses as a number but is refused here as "is not a finite number", and a number beyond
+``stream.checks.VALUE_LIMIT`` (1e100) as "is beyond the learner's range": no split
+statistic survives an infinite value or the square of a huge one.
 
 Limitation: a column read with another dtype in a later chunk is handled, but a
 category's code is fixed at first sight and never recycled.
@@ -19,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from connectors.base import RawBatch, Reject
+from stream.checks import VALUE_LIMIT
 from stream.errors import ModelFileError
 
 from .schema import Schema
@@ -33,6 +35,7 @@ _STATE_VERSION = 1
 
 _REASON_NUMBER = "is not a number"
 _REASON_FINITE = "is not a finite number"
+_REASON_RANGE = f"is beyond the learner's range (magnitude above {VALUE_LIMIT:g})"
 _REASON_TIME = "is not a time"
 _REASON_NO_TARGET = "has no target value"
 
@@ -168,9 +171,7 @@ class Encoder:
             if kind == "numeric":
                 numbers, bad = parse_numbers(raw)
                 report(bad, name, _REASON_NUMBER, raw)
-                infinite = np.isinf(numbers)
-                if infinite.any():
-                    report(infinite, name, _REASON_FINITE, raw)
+                _report_unlearnable(numbers, report, name, raw)
                 X[:, j] = numbers
             else:
                 codes, labels = factorize_labels(raw)
@@ -184,12 +185,11 @@ class Encoder:
                 report(target_codes < 0, target, _REASON_NO_TARGET, None)
         else:
             y_values, bad = parse_numbers(raw_target)
-            infinite = np.isinf(y_values)
             if scoring:
-                y_values = np.where(infinite, np.nan, y_values)
+                y_values = np.where(np.abs(y_values) > VALUE_LIMIT, np.nan, y_values)
             else:
                 report(bad, target, _REASON_NUMBER, raw_target)
-                report(infinite, target, _REASON_FINITE, raw_target)
+                _report_unlearnable(y_values, report, target, raw_target)
                 report(np.isnan(y_values) & ~bad, target, _REASON_NO_TARGET, None)
 
         times = None
@@ -279,6 +279,16 @@ class Encoder:
             raise fail("unknown_fields is not an object")
         encoder.unknown_fields = {str(k): int(v) for k, v in unknown.items()}
         return encoder
+
+
+def _report_unlearnable(numbers: np.ndarray, report, name: str, raw: Any) -> None:
+    """Report infinite values and finite ones beyond ``VALUE_LIMIT`` (NaN passes)."""
+    with np.errstate(invalid="ignore"):
+        huge = np.abs(numbers) > VALUE_LIMIT
+    if huge.any():
+        infinite = np.isinf(numbers)
+        report(infinite, name, _REASON_FINITE, raw)
+        report(huge & ~infinite, name, _REASON_RANGE, raw)
 
 
 def _label_list(labels: Any, fail, what: str) -> list[str]:

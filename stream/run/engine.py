@@ -35,7 +35,7 @@ import numpy as np
 
 from connectors.base import RawBatch
 from connectors.follow import FollowControl, FollowStopped
-from stream.errors import ConfigError, RecordError
+from stream.errors import ConfigError, OutputError, RecordError, SapwoodError
 
 from .atomic import write_atomic
 from .encoding import EncodedBatch, Encoder
@@ -131,12 +131,15 @@ class LearnRun:
                                on_idle=self._on_idle) if job.follow else None
         self.source = open_run_source(job, follow, self.checkpoint.resumed_position()
                                       if self.checkpoint else None)
+        if hasattr(self.source, "on_quiet"):   # a live broker feed
+            self.source.on_quiet = self._on_quiet
         if self.delayed is not None:
             from .reading import batch_rows_for
 
             self.delayed.open(batch_rows_for(job))
         self._pending: list[RawBatch] = []
         handlers = self._catch_signals() if job.checkpoint_path or job.follow else {}
+        failures: list[str] = []
         try:
             try:
                 self._read_all()
@@ -152,7 +155,8 @@ class LearnRun:
                     and self.outputs.last_snapshot_records != self.task.records_learned:
                 self._snapshot()
             if self.checkpoint is not None and self.task is not None:
-                self.checkpoint.write(self)
+                failures += self._attempt("checkpoint", job.checkpoint_path,
+                                          lambda: self.checkpoint.write(self))
         finally:
             for signum, handler in handlers.items():
                 signal.signal(signum, handler)
@@ -161,12 +165,26 @@ class LearnRun:
                 self.delayed.close()
             self.outputs.close()
         if job.save_path and self.task is not None:
-            self.save(job.save_path)
+            failures += self._attempt("model", job.save_path,
+                                      lambda: self.save(job.save_path))
         summary = self.summary()
+        if failures:
+            summary["failures"] = failures
         if job.summary_path:
             write_atomic(job.summary_path, json.dumps(summary, indent=2,
                                                       default=json_default) + "\n")
+        if failures:
+            raise OutputError("; ".join(failures), summary)
         return summary
+
+    @staticmethod
+    def _attempt(what: str, path: str, write) -> list[str]:
+        """Run ``write``; a failure becomes a message instead of losing the summary."""
+        try:
+            write()
+        except (OSError, ValueError, SapwoodError) as exc:  # UnicodeError is a ValueError
+            return [f"could not write the {what} {path!r}: {exc}"]
+        return []
 
     def _read_all(self) -> None:
         """Every batch of the source, through schema inference, learning and checkpoints."""
@@ -205,6 +223,14 @@ class LearnRun:
             return
         if self.checkpoint is not None and self.checkpoint.due_while_idle(self.clock()):
             self.checkpoint.write(self)
+
+    def _on_quiet(self) -> None:
+        """A broker feed waited and nothing came: do what an idle followed file does,
+        and end the reading if a stop was asked for (a caught-up feed would otherwise
+        honour a signal only when the next record arrives)."""
+        self._on_idle()
+        if self.stop.is_set():
+            raise FollowStopped("stop")
 
     def _after_batch(self, batch: RawBatch) -> None:
         """Remember where the source stands; checkpoint or acknowledge when due."""

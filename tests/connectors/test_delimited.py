@@ -149,9 +149,10 @@ def test_empty_input_or_header_only_gives_no_batches(data):
 
 
 def test_header_columns_follow_pandas_naming():
-    src = CsvReader(lambda: io.BytesIO(b'"x,y",b,,b\n1,2,3,4\n'), "t.csv")
-    reference = pd.read_csv(io.BytesIO(b'"x,y",b,,b\n1,2,3,4\n'))
-    assert src.columns == list(reference.columns) == ["x,y", "b", "Unnamed: 2", "b.1"]
+    src = CsvReader(lambda: io.BytesIO(b'"x,y",b,,c,\n1,2,3,4,5\n'), "t.csv")
+    reference = pd.read_csv(io.BytesIO(b'"x,y",b,,c,\n1,2,3,4,5\n'))
+    assert src.columns == list(reference.columns) == ["x,y", "b", "Unnamed: 2", "c",
+                                                      "Unnamed: 4"]
 
 
 def test_tsv():
@@ -293,3 +294,14 @@ def _cells(frame: pd.DataFrame) -> list[list[str]]:
         except (TypeError, ValueError):
             return str(value)
     return [[norm(v) for v in row] for row in frame.astype(object).values.tolist()]
+
+
+def test_a_header_naming_a_column_twice_is_refused_with_both_positions(tmp_path):
+    # pandas.read_csv renames a repeated name ("y" -> "y.1"), so a target named twice
+    # would silently be the first column
+    path = tmp_path / "twice.csv"
+    path.write_text("y,x,y\n1,2,a\n3,4,b\n")
+    reader = CsvReader(lambda: open(path, "rb"), str(path), 100)
+    with pytest.raises(InputError, match=r"names a column more than once \('y' in "
+                                         r"columns 1, 3\)"):
+        list(reader.batches())

@@ -83,8 +83,13 @@ def test_bad_inputs_name_the_row_and_field():
     model = TreeRegressor(NAMES, KINDS)
     X = np.array([[0.0, 1.0, 2.0], [0.0, 1.0, 2.0]])
     with pytest.raises(ConfigError,
-                       match=r"target values must be finite numbers, got nan at row 1"):
+                       match=r"target values must be finite numbers of magnitude at most "
+                             r"1e\+100, got nan at row 1"):
         model.learn(X, np.array([1.0, np.nan]))
+    with pytest.raises(ConfigError, match=r"got 1e\+200 at row 0"):
+        model.learn(X, np.array([1e200, 1.0]))
+    with pytest.raises(ConfigError, match=r"got -1e\+150 in field 'load' at row 1"):
+        model.learn(np.array([[0.0, 1.0, 2.0], [0.0, 1.0, -1e150]]), np.array([1.0, 2.0]))
     with pytest.raises(ConfigError, match=r"got inf in field 'load' at row 0"):
         model.learn(np.array([[0.0, 1.0, np.inf]]), np.array([1.0]))
     with pytest.raises(ConfigError, match=r"got 1.5 in field 'mode' at row 0"):
