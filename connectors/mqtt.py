@@ -133,7 +133,13 @@ class MqttSource:
         Messages that may wait for :meth:`commit` before the broker stops sending.
     reconnects
         Connections re-established after a loss.
+    on_quiet
+        None, or called about every half second while no message comes: the reader of
+        the batches may stop the iteration from there (by raising) or write a
+        checkpoint due by time.
     """
+
+    on_quiet = None
 
     def __init__(self, spec: str, batch_rows: int = 65536, *,
                  clock: Callable[[], float] = time.monotonic,
@@ -427,6 +433,8 @@ class MqttSource:
                     max(0.0, min(0.5, quiet_since + self._idle_exit - now))
                 self._flush_skips()
                 self._check_stall(now - last_message)
+                if self.on_quiet is not None and now - last_message >= 0.5:
+                    self.on_quiet()
             rc = self._client.loop(timeout)
             # take in what has already arrived without waiting again
             while rc == 0 and not self._lost and self._buffered < self._batch_rows:

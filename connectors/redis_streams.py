@@ -125,9 +125,14 @@ class RedisStreamSource:
         None: the server holds any number of pending entries.
     reconnects
         Connections re-established after a loss.
+    on_quiet
+        None, or called each time a read waited ``linger`` seconds and found nothing
+        new: the reader of the batches may stop the iteration from there (by raising)
+        or write a checkpoint due by time, though no entry comes.
     """
 
     max_uncommitted = None
+    on_quiet = None
 
     def __init__(self, spec: str, batch_rows: int = 65536, *,
                  clock: Callable[[], float] = time.monotonic,
@@ -385,9 +390,12 @@ class RedisStreamSource:
             if batch is not None:
                 last_entry = self._clock()
                 yield batch
-            elif not pending and self._idle_exit is not None and \
-                    self._clock() - last_entry >= self._idle_exit:
-                return
+            elif not pending:
+                if self._idle_exit is not None and \
+                        self._clock() - last_entry >= self._idle_exit:
+                    return
+                if self.on_quiet is not None:
+                    self.on_quiet()
 
     def _batch(self, entries: list) -> RawBatch | None:
         """Entries read -> a batch; entries up to the covered or handed-out id are

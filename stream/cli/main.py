@@ -15,6 +15,7 @@ import click
 from stream.errors import EXIT_USAGE, SapwoodError
 from stream.rules.text import CAUTION
 
+from .output import echo
 from .options import Whole, form_option, format_option, option, parse_kinds
 
 
@@ -43,8 +44,8 @@ def score(model_path, sources, fmt, predictions_path, quarantine_path) -> None:
     from stream.run.scoring import score_sources
 
     report = score_sources(model_path, list(sources), fmt, predictions_path, quarantine_path)
-    click.echo(report, err=True)
-    click.echo(CAUTION, err=True)
+    echo(report, err=True)
+    echo(CAUTION, err=True)
 
 
 @cli.command()
@@ -66,11 +67,11 @@ def rules(path, form, form_old, top) -> None:
     if (form or form_old) == "json":
         from stream.rules.rule import rules_payload
 
-        click.echo(json.dumps(rules_payload(rule_list, header), indent=2))
+        echo(json.dumps(rules_payload(rule_list, header), indent=2))
     else:
         from stream.rules.text import render_text
 
-        click.echo(render_text(rule_list, header), nl=False)
+        echo(render_text(rule_list, header), nl=False)
 
 
 @cli.command()
@@ -90,7 +91,7 @@ def schema(sources, target, fmt, kinds) -> None:
     try:
         for batch in source.batches():
             inferred = infer_schema(batch.frame, target, None, parse_kinds(kinds))
-            click.echo(json.dumps(inferred.to_dict(), indent=2))
+            echo(json.dumps(inferred.to_dict(), indent=2))
             return
     finally:
         source.close()
@@ -118,16 +119,16 @@ def main(argv: list[str] | None = None) -> None:
     try:
         code = cli.main(args=argv, prog_name="sapwood", standalone_mode=False)
     except click.exceptions.Abort:
-        click.echo("sapwood: interrupted", err=True)
+        echo("sapwood: interrupted", err=True)
         sys.exit(130)
     except click.ClickException as exc:
         exc.show()
         sys.exit(EXIT_USAGE)
     except SapwoodError as exc:
-        click.echo(f"sapwood: {exc}", err=True)
+        echo(f"sapwood: {exc}", err=True)
         sys.exit(exc.exit_code)
     except KeyboardInterrupt:
-        click.echo("sapwood: interrupted", err=True)
+        echo("sapwood: interrupted", err=True)
         sys.exit(130)
     except BrokenPipeError:
         sys.exit(0)  # the reader of our output went away: nothing left to do

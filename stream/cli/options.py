@@ -23,6 +23,8 @@ from stream.errors import ConfigError
 from stream.regress.settings import REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS
 from stream.tree.settings import DETECTORS
 
+from .output import echo
+
 KINDS = ("numeric", "category", "id", "time", "ignore")
 """Field kinds a user may declare with ``--kind FIELD=KIND``."""
 
@@ -46,7 +48,7 @@ class GroupedOption(click.Option):
 
     def handle_parse_result(self, ctx: click.Context, opts: dict, args: list):
         if self.renamed_to is not None and opts.get(self.name) is not None:
-            click.echo(f"sapwood: warning: {self.opts[0]} is now {self.renamed_to}; the old "
+            echo(f"sapwood: warning: {self.opts[0]} is now {self.renamed_to}; the old "
                        f"name goes in a later release", err=True)
         return super().handle_parse_result(ctx, opts, args)
 

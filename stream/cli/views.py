@@ -19,6 +19,7 @@ import click
 from stream.errors import ConfigError, InputError
 from stream.rules.text import CAUTION
 
+from .output import echo
 from .options import Number, Whole, form_option, format_option, option, renamed
 
 
@@ -61,13 +62,13 @@ def diff(paths, first, last, form, form_old, min_shift) -> None:
     (old_header, old_rules), (new_header, new_rules) = pick_pair(paths, first, last)
     result = diff_rules(old_rules, new_rules, old_header, new_header)
     if fmt == "json":
-        click.echo(json.dumps(result.to_dict(), indent=2))
+        echo(json.dumps(result.to_dict(), indent=2))
     elif fmt == "markdown":
         from stream.rules.markdown import diff_markdown
 
-        click.echo(diff_markdown(result) + f"\n> {CAUTION}\n", nl=False)
+        echo(diff_markdown(result) + f"\n> {CAUTION}\n", nl=False)
     else:
-        click.echo(render_diff_text(result, min_shift / 100) + f"\n{CAUTION}\n", nl=False)
+        echo(render_diff_text(result, min_shift / 100) + f"\n{CAUTION}\n", nl=False)
 
 
 # --------------------------------------------------------------------------- notes
@@ -117,7 +118,7 @@ def notes(path, since, label, top, exact, title) -> None:
         else:
             old_header, old_rules = load_side(since)
         change = diff_rules(old_rules, rules, old_header, header)
-    click.echo(shift_note(shown, header, change, total=total, title=title), nl=False)
+    echo(shift_note(shown, header, change, total=total, title=title), nl=False)
 
 
 # --------------------------------------------------------------------------- explain
@@ -195,17 +196,17 @@ def _explain_with_model(path, sources, records, fmt, output, limit) -> None:
     for batch in _batches(sources, records, fmt, saved.schema.names):
         explained, rejects = explain_batch(saved, batch)
         for reject in rejects:
-            click.echo(f"sapwood: {_reject_text(reject)} (not explained)", err=True)
+            echo(f"sapwood: {_reject_text(reject)} (not explained)", err=True)
         for item in explained:
             if limit is not None and done >= limit:
                 return
             if output == "json":
-                click.echo(json.dumps(item.to_dict()))
+                echo(json.dumps(item.to_dict()))
             else:
-                click.echo(render_explanation(item, target))
+                echo(render_explanation(item, target))
             done += 1
     if output == "text" and done:
-        click.echo(CAUTION)
+        echo(CAUTION)
 
 
 def _explain_with_rules(path, sources, records, fmt, output, limit) -> None:
@@ -237,14 +238,14 @@ def _explain_with_rules(path, sources, records, fmt, output, limit) -> None:
         try:
             found = matcher.match(record)
         except ConfigError as exc:
-            click.echo(f"sapwood: {origin}, {exc} (not explained)", err=True)
+            echo(f"sapwood: {origin}, {exc} (not explained)", err=True)
             return True
         if output == "json":
-            click.echo(json.dumps({"origin": origin, "rules": [r.id for r in found],
+            echo(json.dumps({"origin": origin, "rules": [r.id for r in found],
                                    "predicted": found[0].predict if len(found) == 1
                                    else None}))
         else:
-            click.echo(render_match(origin, found, target))
+            echo(render_match(origin, found, target))
         done += 1
         return True
 
@@ -256,13 +257,13 @@ def _explain_with_rules(path, sources, records, fmt, output, limit) -> None:
 
         for batch in file_batches(sources, fmt):
             for reject in batch.rejects:
-                click.echo(f"sapwood: {_reject_text(reject)} (not explained)", err=True)
+                echo(f"sapwood: {_reject_text(reject)} (not explained)", err=True)
             frame = batch.frame
             for line, values in zip(batch.lines, frame.to_dict("records")):
                 if not emit(f"{batch.origin} line {int(line)}", values):
                     return
     if output == "text" and done:
-        click.echo(CAUTION)
+        echo(CAUTION)
 
 
 # --------------------------------------------------------------------------- watch
@@ -318,9 +319,9 @@ def report(snapshot_dir, metrics_path, events_path, out_path, title) -> None:
     started = time.perf_counter()
     data = load_report_data(snapshot_dir, metrics_path, events_path)
     size = write_report(out_path, data, _iso_now(), title)
-    click.echo(f"sapwood: report written to {out_path} ({size / 1024:,.0f} KiB, "
+    echo(f"sapwood: report written to {out_path} ({size / 1024:,.0f} KiB, "
                f"{time.perf_counter() - started:.1f} s)", err=True)
-    click.echo(out_path)
+    echo(out_path)
 
 
 COMMANDS = {"diff": diff, "notes": notes, "explain": explain, "watch": watch,

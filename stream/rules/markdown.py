@@ -3,8 +3,13 @@
 Inside: :func:`rules_markdown` (a table of rules under a heading with the headline
 facts), :func:`diff_markdown` (what changed since an earlier snapshot, as lists) and
 :func:`shift_note` (both, plus the safety note). Pure functions: the same input gives
-the same text. Conditions are set in code spans so that feature names with ``_`` or
-``*`` are shown as written; table cells escape ``|`` (GitHub-flavoured Markdown tables).
+the same text. Values from the data (field names, labels, category values) never
+reach the Markdown raw: they are set in code spans (:func:`_data`, where HTML, links
+and emphasis are not read) after their control characters and line breaks are escaped
+(a line break would end the span and let the next line start a heading); in running
+text (:func:`_text`) the punctuation that starts markup is backslash-escaped, which
+CommonMark 0.31 section 2.4 allows for any ASCII punctuation. Table cells escape ``|``
+(GitHub-flavoured Markdown tables).
 """
 
 from __future__ import annotations
@@ -12,6 +17,7 @@ from __future__ import annotations
 import re
 from typing import Sequence
 
+from stream.shown import printable
 from stream.tree.paths import Condition
 
 from .diff import RuleDiff, fate_note, origin_note
@@ -20,6 +26,22 @@ from .simplify import Simplified
 from .text import CAUTION, rule_conditions_text
 from .text import format_condition
 
+
+
+# the punctuation that starts markup anywhere in a line (emphasis, code, links, images,
+# HTML, entities, headings, tables, strikethrough); a backslash before any ASCII
+# punctuation is allowed (CommonMark 0.31, section 2.4)
+_PUNCTUATION = re.compile(r"([\\`*_\[\]<>#|~&!])")
+
+
+def _text(value: object) -> str:
+    """A value from the data in running text: printable, every punctuation escaped."""
+    return _PUNCTUATION.sub(r"\\\1", printable(str(value)))
+
+
+def _data(value: object) -> str:
+    """A value from the data as a code span that the value cannot break out of."""
+    return _code(printable(str(value)))
 
 
 def _cell(text: str) -> str:
@@ -58,9 +80,9 @@ def _facts(header: dict, shown: int, total: int | None) -> str:
     else:
         facts.append(f"{shown} rule{'' if shown == 1 else 's'}")
     if header.get("written_at"):
-        facts.append(f"snapshot written {header['written_at']}")
+        facts.append(f"snapshot written {_text(header['written_at'])}")
     elif header.get("data_time"):
-        facts.append(f"data up to {header['data_time']}")
+        facts.append(f"data up to {_text(header['data_time'])}")
     return " · ".join(facts)
 
 
@@ -82,21 +104,21 @@ def rules_markdown(rules: Sequence[Rule | Simplified], header: dict,
         How many rules there are in all, when ``rules`` is a selection.
     """
     target = header.get("target", "target")
-    heading = title or f"Rules for {target}"
+    heading = title or f"Rules for {_text(target)}"
     if header.get("sequence") is not None and title is None:
         heading += f" (snapshot {header['sequence']})"
     lines = [f"## {heading}", "", _facts(header, len(rules), total), ""]
     if not rules:
         lines += ["No rules to show.", ""]
         return "\n".join(lines)
-    lines += [f"| Rule | When | Then {_cell(target)} is | Confidence | Coverage | Records |",
+    lines += [f"| Rule | When | Then {_cell(_text(target))} is | Confidence | Coverage | Records |",
               "|---|---|---|---:|---:|---:|"]
     joined = []
     for item in rules:
         rule = item.rule if isinstance(item, Simplified) else item
         if isinstance(item, Simplified) and len(item.sources) > 1:
             joined.append(f"{rule.id} joins {', '.join(item.sources)}")
-        outcome = "(no records yet)" if rule.predict is None else rule.predict
+        outcome = "(no records yet)" if rule.predict is None else _data(rule.predict)
         lines.append(f"| {rule.id} | {_cell(_when(rule))} | {_cell(outcome)} | "
                      f"{_pct(rule.confidence)} | {_pct(rule.coverage)} | "
                      f"{rule.records:,.0f} |")
@@ -112,6 +134,7 @@ def rules_markdown(rules: Sequence[Rule | Simplified], header: dict,
 
 def _rule_line(rule: Rule, target: str) -> str:
     outcome = "no records yet" if rule.predict is None else f"{target} = {rule.predict}"
+    outcome = printable(outcome)
     return (f"**{rule.id}** {_code('IF ' + rule_conditions_text(rule).replace('  (', ' ('))} "
             f"then {_code(outcome)} (confidence {_pct(rule.confidence)}, coverage "
             f"{_pct(rule.coverage)})")
@@ -149,18 +172,20 @@ def diff_markdown(diff: RuleDiff, limit: int = 20) -> str:
     for change in diff.changed:
         parts = []
         if change.predict_changed:
-            parts.append(f"outcome {change.old.predict} -> {change.new.predict}")
+            parts.append(f"outcome {_data(change.old.predict)} -> "
+                         f"{_data(change.new.predict)}")
         for move in change.moves:
-            parts.append(f"{_code(move['feature'])} {move['bound']} bound "
+            parts.append(f"{_data(move['feature'])} {move['bound']} bound "
                          f"{move['old']:.4g} -> {move['new']:.4g}")
         for cat in change.categories:
             if cat["added"]:
-                parts.append(f"{_code(cat['feature'])} now lists {', '.join(cat['added'])}")
+                parts.append(f"{_data(cat['feature'])} now lists "
+                             f"{', '.join(map(_data, cat['added']))}")
             if cat["removed"]:
-                parts.append(f"{_code(cat['feature'])} no longer lists "
-                             f"{', '.join(cat['removed'])}")
+                parts.append(f"{_data(cat['feature'])} no longer lists "
+                             f"{', '.join(map(_data, cat['removed']))}")
         for item in change.missing:
-            parts.append(f"missing {_code(item['feature'])} "
+            parts.append(f"missing {_data(item['feature'])} "
                          f"{'now' if item['new'] else 'no longer'} follows this rule")
         label = change.new.id if change.old.id == change.new.id else \
             f"{change.old.id} (now {change.new.id})"

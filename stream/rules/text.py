@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Sequence
 
+from stream.shown import printable
 from stream.tree.paths import Condition
 
 from .rule import Rule
@@ -55,19 +56,20 @@ def format_number(value: float) -> str:
 
 def format_condition(conditions: Sequence[Condition]) -> str:
     """One feature's merged conditions as text: ``12.5 < supply_temp <= 30.1``."""
-    name = conditions[0].feature
+    name = printable(conditions[0].feature)
     lo = next((c.value for c in conditions if c.op == ">"), None)
     hi = next((c.value for c in conditions if c.op == "<="), None)
     sets = [c for c in conditions if c.op in ("in", "not in")]
     if sets and sets[0].branch:
         c = sets[0]
-        shown = c.branch[0] if len(c.branch) == 1 else "{" + ", ".join(c.branch) + "}"
+        branch = [printable(label) for label in c.branch]
+        shown = branch[0] if len(branch) == 1 else "{" + ", ".join(branch) + "}"
         text = f"{name} {'=' if len(c.branch) == 1 else 'in'} {shown}"
         text += "  (or missing, or a new value)" if c.missing else "  (or a new value)"
         return text
     if sets:
         c = sets[0]
-        labels = ", ".join(c.value)
+        labels = ", ".join(printable(label) for label in c.value)
         text = f"{name} {'=' if c.op == 'in' and len(c.value) == 1 else c.op} "
         text += labels if c.op == "in" and len(c.value) == 1 else "{" + labels + "}"
     elif lo is not None and hi is not None:
@@ -95,7 +97,7 @@ def _count(value: float) -> str:
 def render_text(rules: Sequence[Rule], header: dict) -> str:
     """Rules as aligned text. ``header`` needs ``target``; ``records``, ``accuracy`` and
     ``written_at`` are shown when present."""
-    target = header.get("target", "target")
+    target = printable(str(header.get("target", "target")))
     lines = [f"sapwood rules for {target}"]
     facts = []
     if header.get("records") is not None:
@@ -129,11 +131,13 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
                 extra.append(f"mean absolute error {format_number(r.estimate['mae'])} over "
                              f"{_count(r.scored)} scored")
         else:
-            outcome = "(no records yet)" if r.predict is None else f"{target} = {r.predict}"
+            outcome = ("(no records yet)" if r.predict is None
+                       else f"{target} = {printable(str(r.predict))}")
             lines.append(f"{pad}THEN {outcome}")
             detail = (f"confidence {100 * r.confidence:.1f}%, coverage "
                       f"{100 * r.coverage:.1f}%, {_count(r.records)} records")
-            split = " / ".join(f"{label} {_count(v)}" for label, v in r.class_counts.items()
+            split = " / ".join(f"{printable(str(label))} {_count(v)}"
+                               for label, v in r.class_counts.items()
                                if v >= 0.5)
             if split:
                 detail += f" ({split})"

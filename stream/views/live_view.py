@@ -26,6 +26,7 @@ import time
 from datetime import datetime, timezone
 from typing import Callable, Sequence, TextIO
 
+from stream.shown import for_terminal
 from stream.errors import SapwoodError
 from stream.rules.rule import Rule, rules_from_payload
 from stream.rules.text import CAUTION, rule_conditions_text
@@ -300,13 +301,15 @@ def watch(state: WatchState, out: TextIO | None = None, interval: float = 2.0,
             now = _stamp(wall())
             if tty:
                 columns, lines = size()
-                frame = render_frame(state, columns, lines, now, blocks)
+                frame = [for_terminal(line)
+                         for line in render_frame(state, columns, lines, now, blocks)]
                 out.write("\x1b[H" + "".join(line + "\x1b[K\n" for line in frame[:-1])
                           + frame[-1] + "\x1b[K\x1b[J")
                 out.flush()
             elif changed or count == 0:
                 # a log is read later, maybe wider: no clipping, the rules that fit 40 lines
-                frame = render_frame(state, PLAIN_WIDTH, 40, now, blocks)
+                frame = [for_terminal(line)
+                         for line in render_frame(state, PLAIN_WIDTH, 40, now, blocks)]
                 out.write("\n".join(frame) + "\n\n")
                 out.flush()
             count += 1

@@ -427,3 +427,45 @@ def test_learn_reads_a_stream_and_publishes_each_prediction_to_another(server, s
     assert late > 0.95
     assert summary["outputs"]["predictions"].startswith("redis://")
     assert pending_count(server, stream) == 0
+
+
+def test_a_caught_up_run_stops_within_a_second_of_sigterm_with_a_checkpoint(
+        server, stream, tmp_path):
+    """A learner that has read everything waits in XREADGROUP BLOCK; SIGTERM must end it
+    promptly with a checkpoint and every entry acknowledged (XPENDING count 0), exit 0."""
+    import signal
+    import subprocess
+    import sys
+
+    from stream.child_env import same_code_env
+
+    add(server, stream, 2_000)
+    ckpt, summary = tmp_path / "run.ckpt", tmp_path / "s.json"
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "stream.cli", "learn", server.url(stream=stream),
+         "--target", "state", "--checkpoint", str(ckpt), "--checkpoint-every", "100000",
+         "--summary", str(summary), "-q"],
+        stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=same_code_env())
+    try:
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline:
+            groups = server.client().xinfo_groups(stream)
+            if groups and groups[0]["entries-read"] == 2_000:
+                break
+            time.sleep(0.05)
+        time.sleep(1.0)                       # caught up: nothing more comes
+        assert proc.poll() is None
+        proc.send_signal(signal.SIGTERM)
+        asked = time.monotonic()
+        _, err = proc.communicate(timeout=30)
+        took = time.monotonic() - asked
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 0, err.decode()
+    # generous against a loaded machine; before the fix the run never ended on its own
+    assert took < 10, took
+    facts = json.loads(summary.read_text())
+    assert facts["stopped"] == "SIGTERM" and facts["learned"] == 2_000
+    assert facts["checkpoint"]["written"] >= 1 and ckpt.exists()
+    assert pending_count(server, stream) == 0

@@ -49,8 +49,8 @@ def test_rules_table_exact():
 
 | Rule | When | Then excursion is | Confidence | Coverage | Records |
 |---|---|---|---:|---:|---:|
-| R4 | `door = open` and `door_open_min > 14.5` and `ambient_c > 27.9 (or missing)` | yes | 93.1% | 20.9% | 2,513 |
-| R2 | `door = closed (or missing, or a new value)` | no | 96.8% | 77.5% | 9,300 |
+| R4 | `door = open` and `door_open_min > 14.5` and `ambient_c > 27.9 (or missing)` | `yes` | 93.1% | 20.9% | 2,513 |
+| R2 | `door = closed (or missing, or a new value)` | `no` | 96.8% | 77.5% | 9,300 |
 """
 
 
@@ -85,7 +85,7 @@ def test_joined_rules_list_their_sources():
     rules = [make_rule("R1", ("x", "<=", 1.0, True)), make_rule("R2", ("x", ">", 1.0)),
              ]
     text = rules_markdown(simplify(rules), {"target": "t"})
-    assert "| S1 | always | yes |" in text
+    assert "| S1 | always | `yes` |" in text
     assert "- S1 joins R1, R2" in text
 
 
@@ -101,7 +101,7 @@ def test_notes_command(run):
     lines = result.output.splitlines()
     assert lines[0].startswith("## Rules for approved (snapshot ")
     table = [line for line in lines if line.startswith("| S")]
-    assert table and all(line.split(" | ")[2] == "yes" for line in table)
+    assert table and all(line.split(" | ")[2] == "`yes`" for line in table)
     assert "### Changes since snapshot 1" in lines
     exact = runner.invoke(notes, [str(run.model), "--exact", "--top", "3"])
     assert exact.exit_code == 0
@@ -113,3 +113,23 @@ def test_notes_refuses_an_unknown_class(run):
     assert isinstance(result.exception, ConfigError)
     assert str(result.exception) == ("--class must be one of the predicted classes (no, yes), "
                                      "got 'maybe'")
+
+
+HOSTILE = "x\n# FAKE HEADING: all clear, disable alarm <img src=x onerror=alert(1)> [ok](http://e)"
+
+
+def test_data_cannot_add_markup_to_a_note():
+    # CommonMark 0.31: a line starting with "# " is a heading, "<img" opens raw HTML,
+    # "[..](..)" is a link; none of these may come from the data
+    rules = [make_rule("R1", ("door", "in", (HOSTILE,)), predict=HOSTILE),
+             make_rule("R2", ("door", "not in", (HOSTILE,)), predict="no")]
+    header = {"target": "exc`ursion <b>", "records": 10, "sequence": 2}
+    old = [make_rule("R1", ("door", "in", ("open",)), predict="no"), rules[1]]
+    note = shift_note(rules, header, diff_rules(old, rules, header, header))
+    assert not any(line.lstrip("- ").startswith("#") and "FAKE" in line
+                   for line in note.splitlines())
+    for line in note.splitlines():
+        # outside code spans nothing of the hostile text is live markup
+        outside = "".join(re.split(r"(`+).*?\1", line)[::2])
+        assert "<img" not in outside and "](http" not in outside and "<b>" not in outside
+    assert "\\n# FAKE HEADING" in note     # the value is still shown, escaped
