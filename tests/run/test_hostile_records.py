@@ -81,10 +81,12 @@ def test_a_huge_feature_value_is_quarantined_too(tmp_path):
 def test_a_checkpointed_run_with_a_poison_record_resumes_and_ends(tmp_path):
     path = friedman_csv(tmp_path / "friedman.csv", 3_000, 1e200)
     job = dict(sources=[str(path)], target="y", checkpoint_path=str(tmp_path / "ck"),
-               checkpoint_every=500, batch_rows=500)
+               checkpoint_every=500, batch_rows=500,
+               quarantine_path=str(tmp_path / "q.jsonl"))
     first = run_learn(LearnJob(**job))
     again = run_learn(LearnJob(**job))   # starts from the checkpoint at the end
     assert first["learned"] == again["learned"] == 2_999
+    assert len((tmp_path / "q.jsonl").read_text().splitlines()) == 1
 
 
 SURROGATE_LINES = [
