@@ -19,13 +19,14 @@ import dataclasses
 
 import numpy as np
 
-from stream.errors import ConfigError
+from stream.errors import ConfigError, ModelFileError
 from stream.tree.upkeep import DriftEvent, TableOps, TableUpkeep
 from stream.tree.views import check_features
 
 from .kernel import has_room, leaf_cap, learn_batch, predict_batch, worst_case
 from .settings import TreeSettings
-from .tables import S_CLASSES_SEEN, S_PRUNED, ClassifierTables, allocate, capacities, grow
+from .tables import (S_CLASSES_SEEN, S_PRUNED, ClassifierTables, allocate, capacities,
+                     check_tables, grow)
 
 
 @dataclasses.dataclass
@@ -139,9 +140,12 @@ class TreeClassifier(TableUpkeep):
         missing = [f for f in ClassifierTables._fields if f not in arrays]
         if missing:
             raise ConfigError(f"saved tree lacks table {missing[0]!r}")
-        model.tables_ = ClassifierTables(**{f: np.ascontiguousarray(arrays[f])
-                                            for f in ClassifierTables._fields})
+        model.tables_ = check_tables(ClassifierTables(**{f: arrays[f]
+                                                         for f in ClassifierTables._fields}),
+                                     model.settings, list(meta["feature_kinds"]))
         model.classes_ = list(meta["classes"])
+        if len(model.classes_) > model.tables_.counts.shape[1]:
+            raise ModelFileError("saved tree: it names more classes than its tables hold")
         return model
 
     # ------------------------------------------------------------------ introspection

@@ -82,6 +82,8 @@ from stream.tree.layout import (ALT, ALT_OF, ALTERNATE, BRANCH, CHILD_START, CRE
                                 event_capacity, feature_map, grow_node_rows,
                                 grow_slot_stack, node_arrays, plant_root, relay_children,
                                 resized)
+from stream.errors import ModelFileError
+from stream.tree.checked import check_structure
 from stream.tree.settings import DETECTORS
 
 from .settings import CRITERIA, LEAF_MODELS, NUMERIC_SPLITS, TreeSettings
@@ -186,6 +188,60 @@ def allocate(settings: TreeSettings, feature_kinds: list[str], classes: int = 2,
     t = ClassifierTables(**arrays)
     plant_root(t, with_detector=t.cfg_i[C_DETECTOR] != DETECTORS["off"])
     return t
+
+
+def check_tables(t: ClassifierTables, settings: TreeSettings,
+                 feature_kinds: list[str]) -> ClassifierTables:
+    """``t`` if its tables fit together, fit ``settings`` and ``feature_kinds`` and make
+    a tree (:func:`stream.tree.checked.check_structure`); otherwise
+    :class:`~stream.errors.ModelFileError` naming the first field that does not. The
+    kernels index without bounds checks, so a damaged or edited file is refused here."""
+    fresh = allocate(settings, feature_kinds, classes=1, cats=1, nodes=1, slots=1)
+    for name in FIELDS:
+        a, ref = getattr(t, name), getattr(fresh, name)
+        if not isinstance(a, np.ndarray) or a.dtype != ref.dtype or a.ndim != ref.ndim:
+            raise ModelFileError(f"saved tree: table {name!r} has the wrong type or rank")
+    if t.cfg_i.shape != fresh.cfg_i.shape or t.cfg_f.shape != fresh.cfg_f.shape \
+            or t.state.shape != fresh.state.shape:
+        raise ModelFileError("saved tree: settings or counters have the wrong length")
+    if not (np.array_equal(t.cfg_i, fresh.cfg_i) and np.array_equal(t.cfg_f, fresh.cfg_f)):
+        raise ModelFileError("saved tree: its tables were built with other settings")
+    if t.fmap.shape != fresh.fmap.shape or not np.array_equal(t.fmap[:, :2], fresh.fmap[:, :2]):
+        raise ModelFileError("saved tree: its tables were built for other features")
+    nodes, slots = t.node_i.shape[0], t.free_slots.shape[0]
+    classes, cats = t.counts.shape[1], t.cats.shape[3] - 1
+    if nodes < 1 or classes < 1 or cats < 0 or t.child_table.shape[0] < 0:
+        raise ModelFileError("saved tree: its tables are empty")
+    histogram = settings.numeric_splits == "histogram"
+    buffer = int(fresh.cfg_i[C_BUFFER])
+    n_numeric, n_cat = t.gauss.shape[1], t.cats.shape[1]
+    expected = _slot_shapes(slots, n_numeric, n_cat, classes, cats, histogram,
+                            settings.histogram_bins, buffer)
+    expected.update(detector_shapes(int(fresh.cfg_i[C_DETECTOR]), nodes,
+                                    int(fresh.cfg_i[C_ADWIN_BUCKETS])))
+    expected.update({"node_i": (nodes, NODE_I_COLS), "node_f": (nodes, NODE_F_COLS),
+                     "counts": (nodes, classes), "free_slots": (slots,),
+                     "free_dets": (nodes,), "free_nodes": (nodes,),
+                     "events_i": (event_capacity(nodes), 4),
+                     "events_f": (event_capacity(nodes), 2)})
+    if (n_numeric, n_cat) != (fresh.gauss.shape[1], fresh.cats.shape[1]):
+        raise ModelFileError("saved tree: its tables were built for other features")
+    for name, shape in expected.items():
+        if getattr(t, name).shape != shape:
+            raise ModelFileError(f"saved tree: table {name!r} has shape "
+                                 f"{getattr(t, name).shape}, expected {shape}")
+    seen = t.fmap[:, FM_SEEN]
+    if ((seen < 0) | (seen > cats)).any():
+        raise ModelFileError("saved tree: the feature map's category counts exceed the "
+                             "category tables")
+    if not (0 <= t.state[S_CLASSES_SEEN] <= classes and 0 <= t.state[S_CATS_SEEN] <= cats + 1):
+        raise ModelFileError("saved tree: its class or category counters exceed its tables")
+    if histogram and t.hist_meta.size and (
+            (t.hist_meta < 0).any() or (t.hist_meta[..., H_NEDGES] > settings.histogram_bins - 1).any()
+            or (t.hist_meta[..., H_NBUF] > buffer).any()):
+        raise ModelFileError("saved tree: its histogram counters exceed their tables")
+    check_structure(t, len(feature_kinds), int(fresh.cfg_i[C_DETECTOR]) != DETECTORS["off"])
+    return ClassifierTables(**{f: np.ascontiguousarray(getattr(t, f)) for f in FIELDS})
 
 
 def capacities(t: ClassifierTables) -> dict:

@@ -100,6 +100,7 @@ from stream.tree.layout import (ALT, ALT_OF, ALTERNATE, BRANCH, CHILD_START, CRE
                                 event_capacity, feature_map, grow_node_rows,
                                 grow_slot_stack, node_arrays, plant_root, relay_children,
                                 resized)
+from stream.tree.checked import check_structure
 from stream.tree.settings import DETECTORS
 
 from .settings import (REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS, REGRESSION_SPLITS,
@@ -319,4 +320,5 @@ def check_tables(t: RegressorTables, settings: RegressionSettings,
         or (branches[:, CHILD_START] + branches[:, N_CHILDREN] > used).any()
     if bad:
         raise ModelFileError("saved tree: its node or slot tables are inconsistent")
+    check_structure(t, len(feature_kinds), int(fresh.cfg_i[RC_DETECTOR]) != DETECTORS["off"])
     return RegressorTables(**{f: np.ascontiguousarray(getattr(t, f)) for f in FIELDS})
