@@ -41,6 +41,10 @@ class ModelFileError(InputError):
     """A saved model, snapshot or checkpoint is missing, corrupt or of another version."""
 
 
+class NewerFileError(ModelFileError):
+    """A model or checkpoint written by a newer sapwood: valid, but not readable here."""
+
+
 class OutputError(SapwoodError):
     """The run learned, but a result (saved model, checkpoint) could not be written.
 

@@ -50,7 +50,7 @@ from typing import Any, Callable
 
 import numpy as np
 
-from stream.errors import ConfigError, ModelFileError
+from stream.errors import ConfigError, ModelFileError, NewerFileError
 
 from .model_file import read_model_file, write_model_file
 from .saved_model import LEARNERS
@@ -111,6 +111,8 @@ def read_checkpoint(path: str | os.PathLike, warn: Callable[[str], None]) -> Che
     if have_main:
         try:
             return _read(path)
+        except NewerFileError:
+            raise                 # not damaged: never set aside, never skipped
         except ModelFileError as exc:
             problem = exc
     if not have_prev:
@@ -136,8 +138,9 @@ def _read(path: str) -> Checkpoint:
     if type(version) is not int or version < 1:
         raise ModelFileError(f"{path!r} is corrupt: it has no checkpoint version")
     if version > CHECKPOINT_VERSION:
-        raise ModelFileError(f"{path!r} is checkpoint version {version}, newer than this "
-                             f"sapwood reads (up to {CHECKPOINT_VERSION})")
+        raise NewerFileError(f"{path!r} was written by a newer sapwood (checkpoint "
+                             f"version {version}; this one reads up to "
+                             f"{CHECKPOINT_VERSION}): resume with that sapwood")
     for key in ("job", "schema", "encoder", "task", "tree", "score", "run", "outputs"):
         if key not in meta:
             raise ModelFileError(f"{path!r} is corrupt: the checkpoint lacks {key!r}")

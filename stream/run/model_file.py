@@ -52,7 +52,7 @@ from typing import IO, Any
 
 import numpy as np
 
-from stream.errors import ModelFileError
+from stream.errors import ModelFileError, NewerFileError
 
 from .atomic import atomic_writer
 
@@ -328,9 +328,9 @@ def _read_layout(handle: IO[bytes], name: str) -> _Layout:
         raise _corrupt(name, "the header line is damaged")
     version = int(match.group(1))
     if version > FORMAT_VERSION:
-        raise ModelFileError(
-            f"{name!r} is in format version {version}, newer than this sapwood reads "
-            f"(up to {FORMAT_VERSION}); read it with a newer sapwood")
+        raise NewerFileError(
+            f"{name!r} was written by a newer sapwood (format version {version}; this "
+            f"one reads up to {FORMAT_VERSION}); read it with a newer sapwood")
     if version < 1:
         raise _corrupt(name, f"format version {version} does not exist")
     if any(v not in _MANIFEST_UPGRADES for v in range(version, FORMAT_VERSION)):

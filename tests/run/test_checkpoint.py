@@ -258,9 +258,19 @@ def test_both_checkpoints_damaged_is_an_error_naming_both(finished):
 def test_a_newer_checkpoint_version_is_refused(tmp_path):
     path = str(tmp_path / "x.ckpt")
     ck.write_checkpoint(path, {"checkpoint_version": 99}, {})
-    with pytest.raises(ModelFileError, match="is checkpoint version 99, newer than this "
-                                             "sapwood reads"):
+    with pytest.raises(ModelFileError, match=r"was written by a newer sapwood \(checkpoint "
+                                             "version 99"):
         ck._read(path)
+
+
+def test_a_newer_checkpoint_is_not_set_aside_as_corrupt(finished):
+    # a valid file of a later release: refusing it must not rename it or fall back
+    path = finished / "run.ckpt"
+    meta, arrays = ck.read_model_file(str(path))
+    ck.write_checkpoint(str(path), {**meta, "checkpoint_version": 99}, arrays)
+    with pytest.raises(ModelFileError, match="written by a newer sapwood"):
+        ck.read_checkpoint(str(path), print)
+    assert path.exists() and not (finished / "run.ckpt.corrupt").exists()
 
 
 def test_a_checkpoint_of_another_command_is_refused_with_exit_1(agrawal_csv, finished):

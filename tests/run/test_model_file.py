@@ -292,8 +292,9 @@ def test_future_version_is_refused(tmp_path):
     path = tmp_path / "m.sap"
     _sample(path)
     path.write_bytes(path.read_bytes().replace(b"version 1 ", b"version 7 ", 1))
-    with pytest.raises(ModelFileError, match="is in format version 7, newer than this sapwood "
-                                             r"reads \(up to 1\); read it with a newer sapwood"):
+    with pytest.raises(ModelFileError, match=r"was written by a newer sapwood \(format version "
+                                             r"7; this one reads up to 1\); read it with a "
+                                             "newer sapwood"):
         read_model_file(path)
     with pytest.raises(ModelFileError, match="format version 7"):
         describe_model_file(path)
