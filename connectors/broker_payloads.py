@@ -71,6 +71,17 @@ def scheme_of(spec: str) -> str | None:
     return match.group(1).lower() if match else None
 
 
+def _userinfo_beyond_netloc(netloc: str, rest: str) -> str | None:
+    """What follows the credentials when a password holds a '/' (the URL's host part
+    then ends inside the password), else None. RFC 3986 wants '/' in a password
+    written %2F; until it is, nothing up to the last '@' may be shown."""
+    head = rest.split("?", 1)[0]
+    if "@" in netloc or ":" not in netloc or "@" not in head \
+            or netloc.rsplit(":", 1)[1].isdigit():   # host:port, and an '@' in the path
+        return None
+    return head[head.rfind("@") + 1:] + rest[len(head):]
+
+
 def redacted(spec: str) -> str:
     """``spec`` with every password replaced by ``***``; anything else unchanged.
 
@@ -83,6 +94,10 @@ def redacted(spec: str) -> str:
     if not match:
         return spec
     scheme, netloc, rest = match.groups()
+    hidden = _userinfo_beyond_netloc(netloc, rest)
+    if hidden is not None:     # a '/' in the password: hide up to the last '@'
+        user = netloc.split(":", 1)[0]
+        return f"{scheme}://{user}:{_SECRET}@{hidden}"
     userinfo, at, hostport = netloc.rpartition("@")
     if at and ":" in userinfo:
         netloc = userinfo.split(":", 1)[0] + ":" + _SECRET + "@" + hostport
@@ -130,6 +145,9 @@ def parse_address(spec: str, default_port: int) -> BrokerAddress:
     if not match:
         raise ConfigError(f"a broker source must look like scheme://host:port/..., got {shown!r}")
     scheme, netloc, rest = match.groups()
+    if _userinfo_beyond_netloc(netloc, rest) is not None:
+        raise ConfigError(f"the password in {shown!r} holds a '/': write it as %2F "
+                          "(or give it with password_env)")
     userinfo, at, hostport = netloc.rpartition("@")
     username = password = None
     if at:
@@ -262,8 +280,11 @@ class Options:
         """Raise ConfigError for an option no getter asked for."""
         unknown = sorted(set(self._values) - self._known)
         if unknown:
+                # a misspelt option may hold a secret (passwrd=...): its value is not shown
+            shown = re.sub(rf"([?&]{re.escape(unknown[0])}=)[^&]*", rf"\g<1>{_SECRET}",
+                           self._display)
             raise ConfigError(f"unknown option {unknown[0]!r} for {self._kind} sources "
-                              f"(in {self._display!r}); known: {', '.join(sorted(self._known))}")
+                              f"(in {shown!r}); known: {', '.join(sorted(self._known))}")
 
 
 def input_error(display: str, exc: BaseException | str) -> InputError:

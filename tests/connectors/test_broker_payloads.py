@@ -361,3 +361,21 @@ def test_a_password_can_come_from_the_environment_and_is_never_shown(monkeypatch
     with pytest.raises(ConfigError, match="not both") as caught:
         Options(both, {}, "redis").password(None)
     assert "=a&" not in str(caught.value) and "password=***" in str(caught.value)
+
+
+@pytest.mark.parametrize("spec", ["redis://ops:se/cret@127.0.0.1:6379/0?stream=a",
+                                  "mqtt://ops:se/cret@plant/t/#"])
+def test_a_password_holding_a_slash_is_never_shown(spec):
+    # RFC 3986 section 3.2.1: a '/' in the user information must be percent-encoded;
+    # unencoded, the host part ends inside the password
+    with pytest.raises(ConfigError) as caught:
+        parse_address(spec, 1883)
+    assert "cret" not in str(caught.value) and " se" not in str(caught.value)
+    assert "%2F" in str(caught.value)
+    assert "cret" not in redacted(spec)
+
+
+def test_an_unknown_option_is_named_without_its_value():
+    with pytest.raises(ConfigError) as caught:
+        open_broker("redis://127.0.0.1:6379/0?stream=a&passwrd=topsecret")
+    assert "passwrd" in str(caught.value) and "topsecret" not in str(caught.value)
