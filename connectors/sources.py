@@ -357,6 +357,8 @@ class ChainedSource:
         self._resume: dict | None = None
         self._iterating = None
         self.name = ", ".join(inp.origin for inp in inputs)
+        self.header_columns: list[str] | None = None
+        """The columns of the first header read (delimited inputs), even with no record."""
 
     @property
     def resumable(self) -> bool:
@@ -395,6 +397,8 @@ class ChainedSource:
                 reference.append((resume["path"], list(resume["columns"])))
 
         def check(origin: str, columns: list[str]) -> None:
+            if self.header_columns is None:
+                self.header_columns = list(columns)
             if not reference:
                 reference.append((origin, columns))
             else:

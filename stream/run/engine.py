@@ -35,7 +35,7 @@ import numpy as np
 
 from connectors.base import RawBatch
 from connectors.follow import FollowControl, FollowStopped
-from stream.errors import ConfigError, OutputError, RecordError, SapwoodError
+from stream.errors import ConfigError, OutputError, RecordError, SapwoodError, SchemaError
 
 from .atomic import write_atomic
 from .encoding import EncodedBatch, Encoder
@@ -44,7 +44,7 @@ from .outputs import RunOutputs, json_default
 from .reading import held_enough, infer_run_schema, open_run_source
 from .resume import RunCheckpoint
 from .saved_model import save_model
-from .schema import Schema, load_schema
+from .schema import Schema, not_a_field, load_schema
 from .summary import rules_header, run_summary, tree_facts
 from .tasks import TASKS, warm_up
 
@@ -150,6 +150,7 @@ class LearnRun:
                 if self.checkpoint is None:
                     self.delayed.commit()   # nothing durable to wait for
             self.finished = self.clock()
+            self._check_target_of_empty_input()
             if self.stopped is None and self.outputs.snapshots is not None \
                     and self.task is not None \
                     and self.outputs.last_snapshot_records != self.task.records_learned:
@@ -223,6 +224,13 @@ class LearnRun:
             return
         if self.checkpoint is not None and self.checkpoint.due_while_idle(self.clock()):
             self.checkpoint.write(self)
+
+    def _check_target_of_empty_input(self) -> None:
+        """A header with no record under it still names the fields: an unknown target
+        is the same error as with records, not an empty success."""
+        columns = getattr(self.source, "header_columns", None)
+        if self.task is None and columns and self.job.target not in columns:
+            raise SchemaError(not_a_field("target", self.job.target, columns))
 
     def _on_quiet(self) -> None:
         """A broker feed waited and nothing came: do what an idle followed file does,

@@ -104,7 +104,7 @@ class Schema:
         if self.task not in TASKS:
             raise SchemaError(f"task must be one of {', '.join(TASKS)}, got {self.task!r}")
         if self.target not in seen:
-            raise SchemaError(_not_a_field("target", self.target, names))
+            raise SchemaError(not_a_field("target", self.target, names))
         for f in self.fields:
             if (f.kind == "target") != (f.name == self.target):
                 raise SchemaError(f"field {f.name!r} has kind {f.kind!r} but the target "
@@ -146,7 +146,7 @@ class Schema:
         for f in self.fields:
             if f.name == name:
                 return f.kind
-        raise SchemaError(_not_a_field("field", name, self.names))
+        raise SchemaError(not_a_field("field", name, self.names))
 
     def to_dict(self) -> dict:
         return {"target": self.target, "task": self.task,
@@ -173,7 +173,7 @@ class Schema:
                    data["target"], data["task"])
 
 
-def _not_a_field(what: str, name: str, names: list[str]) -> str:
+def not_a_field(what: str, name: str, names: list[str]) -> str:
     return f"{what} {name!r} is not a field; fields are: {', '.join(names)}"
 
 
@@ -237,11 +237,11 @@ def infer_schema(frame: pd.DataFrame, target: str, task: str | None = None,
     """
     names = [str(c) for c in frame.columns]
     if target not in names:
-        raise SchemaError(_not_a_field("target", target, names))
+        raise SchemaError(not_a_field("target", target, names))
     declared = dict(declared or {})
     for name, kind in declared.items():
         if name not in names:
-            raise SchemaError(_not_a_field("declared field", name, names))
+            raise SchemaError(not_a_field("declared field", name, names))
         Field(name, kind)  # validates the kind
         if name == target and kind != "target":
             raise SchemaError(f"field {name!r} is the target; it cannot be declared {kind!r}")

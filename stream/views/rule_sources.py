@@ -29,6 +29,8 @@ def load_rules(path: str) -> tuple[dict, list[Rule]]:
             head = handle.read(len(MAGIC))
     except OSError as exc:
         raise InputError(f"cannot read {path!r}: {exc.strerror or exc}") from exc
+    if not head:    # the same words as the model reader's
+        raise ModelFileError(f"{path!r} is truncated: the file is empty")
     if head == MAGIC:
         from stream.run.saved_model import load_model
 
