@@ -33,7 +33,7 @@ _MAX_VALUE_CHARS = 200
 _STATE_FORMAT = "sapwood-encoder"
 _STATE_VERSION = 1
 
-_REASON_NUMBER = "is not a number"
+NOT_A_NUMBER = _REASON_NUMBER = "is not a number"
 _REASON_FINITE = "is not a finite number"
 _REASON_RANGE = f"is beyond the learner's range (magnitude above {VALUE_LIMIT:g})"
 _REASON_TIME = "is not a time"

@@ -70,6 +70,7 @@ def run_summary(run: Any) -> dict:
         "tree": tree_facts(m) if m else None,
         "schema": run.schema.to_dict() if run.schema else None,
         "unknown_fields": dict(run.encoder.unknown_fields) if run.encoder else {},
+        "text_in_numbers": dict(run.text_in_numbers),
         "sources": [redacted(spec) for spec in job.sources],
         "stopped": run.stopped,
         "checkpoint": None if checkpoint is None else {

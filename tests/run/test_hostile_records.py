@@ -21,7 +21,7 @@ from connectors.jsonlines import JsonLinesReader
 from stream.checks import VALUE_LIMIT
 from stream.cli.main import main
 from stream.errors import EXIT_OUTPUT, OutputError
-from stream.run.engine import run_learn
+from stream.run.engine import LearnRun, run_learn
 from stream.run.job import LearnJob
 from stream.run.model_file import read_model_file
 
@@ -148,3 +148,19 @@ def test_a_model_that_cannot_be_written_still_gives_the_summary(tmp_path, capsys
     err = capsys.readouterr().err
     assert ended.value.code == EXIT_OUTPUT
     assert "learned 1,000 of 1,000 records" in err and "could not write the model" in err
+
+
+def test_text_in_a_field_inferred_numeric_is_said_once_and_counted(tmp_path):
+    # a field empty in the first 10,000 records (inferred numeric), labels later
+    rows = ["x,code,y"] + [f"{i % 97 / 97},,{'hi' if i % 97 > 48 else 'lo'}"
+                           for i in range(10_500)]
+    rows += [f"{i % 97 / 97},A{i % 3},{'hi' if i % 97 > 48 else 'lo'}" for i in range(1_500)]
+    path = tmp_path / "late.csv"
+    path.write_text("\n".join(rows) + "\n")
+    warnings: list[str] = []
+    summary = LearnRun(LearnJob(sources=[str(path)], target="y",
+                                quarantine_path=str(tmp_path / "q.jsonl")),
+                       warn=warnings.append).run()
+    assert summary["text_in_numbers"] == {"code": 1_500}
+    assert len(warnings) == 1 and "line 10502: field 'code' holds 'A0'" in warnings[0]
+    assert "--kind code=category" in warnings[0]
