@@ -43,6 +43,7 @@ class CheckpointedRun(Protocol):
     prior_seconds: float
     resumes: int
     resumed_at: int | None
+    text_in_numbers: dict[str, int]
 
 
 class RunCheckpoint:
@@ -131,6 +132,7 @@ class RunCheckpoint:
             "recent_events": outputs["recent_events"],
             "seconds": run.prior_seconds + (run.clock() - run.started),
             "resumes": run.resumes, "checkpoints": self.written + 1,
+            "text_in_numbers": dict(run.text_in_numbers),
         }
 
     def restore(self, run: CheckpointedRun) -> None:
@@ -156,6 +158,11 @@ class RunCheckpoint:
         run.last_time = state["last_time"]
         run.prior_seconds = float(state["seconds"])
         run.resumes = int(state["resumes"]) + 1
+        counts = state.get("text_in_numbers", {})     # absent in older checkpoints
+        if not isinstance(counts, dict):
+            raise ModelFileError(f"{checkpoint.path!r}: its 'text_in_numbers' is not an "
+                                 "object")
+        run.text_in_numbers = {str(k): int(v) for k, v in counts.items()}
         run.resumed_at = run.records
         self.written = 0
         if run.outputs.snapshots is not None:
