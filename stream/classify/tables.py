@@ -83,7 +83,7 @@ from stream.tree.layout import (ALT, ALT_OF, ALTERNATE, BRANCH, CHILD_START, CRE
                                 grow_slot_stack, node_arrays, plant_root, relay_children,
                                 resized)
 from stream.errors import ModelFileError
-from stream.tree.checked import check_structure
+from stream.tree.checked import check_like, check_structure
 from stream.tree.settings import DETECTORS
 
 from .settings import CRITERIA, LEAF_MODELS, NUMERIC_SPLITS, TreeSettings
@@ -197,17 +197,7 @@ def check_tables(t: ClassifierTables, settings: TreeSettings,
     :class:`~stream.errors.ModelFileError` naming the first field that does not. The
     kernels index without bounds checks, so a damaged or edited file is refused here."""
     fresh = allocate(settings, feature_kinds, classes=1, cats=1, nodes=1, slots=1)
-    for name in FIELDS:
-        a, ref = getattr(t, name), getattr(fresh, name)
-        if not isinstance(a, np.ndarray) or a.dtype != ref.dtype or a.ndim != ref.ndim:
-            raise ModelFileError(f"saved tree: table {name!r} has the wrong type or rank")
-    if t.cfg_i.shape != fresh.cfg_i.shape or t.cfg_f.shape != fresh.cfg_f.shape \
-            or t.state.shape != fresh.state.shape:
-        raise ModelFileError("saved tree: settings or counters have the wrong length")
-    if not (np.array_equal(t.cfg_i, fresh.cfg_i) and np.array_equal(t.cfg_f, fresh.cfg_f)):
-        raise ModelFileError("saved tree: its tables were built with other settings")
-    if t.fmap.shape != fresh.fmap.shape or not np.array_equal(t.fmap[:, :2], fresh.fmap[:, :2]):
-        raise ModelFileError("saved tree: its tables were built for other features")
+    check_like(t, fresh, FIELDS)
     nodes, slots = t.node_i.shape[0], t.free_slots.shape[0]
     classes, cats = t.counts.shape[1], t.cats.shape[3] - 1
     if nodes < 1 or classes < 1 or cats < 0 or t.child_table.shape[0] < 0:

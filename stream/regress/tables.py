@@ -100,7 +100,7 @@ from stream.tree.layout import (ALT, ALT_OF, ALTERNATE, BRANCH, CHILD_START, CRE
                                 event_capacity, feature_map, grow_node_rows,
                                 grow_slot_stack, node_arrays, plant_root, relay_children,
                                 resized)
-from stream.tree.checked import check_structure
+from stream.tree.checked import check_like, check_structure
 from stream.tree.settings import DETECTORS
 
 from .settings import (REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS, REGRESSION_SPLITS,
@@ -264,17 +264,7 @@ def check_tables(t: RegressorTables, settings: RegressionSettings,
     otherwise :class:`ModelFileError` naming the first table that does not. The kernels
     index without bounds checks, so a damaged file must be refused here."""
     fresh = allocate(settings, feature_kinds, cats=1, nodes=1, slots=1)
-    for name in FIELDS:
-        a, ref = getattr(t, name), getattr(fresh, name)
-        if not isinstance(a, np.ndarray) or a.dtype != ref.dtype or a.ndim != ref.ndim:
-            raise ModelFileError(f"saved tree: table {name!r} has the wrong type or rank")
-    if t.cfg_i.shape != fresh.cfg_i.shape or t.cfg_f.shape != fresh.cfg_f.shape \
-            or t.state.shape != fresh.state.shape:
-        raise ModelFileError("saved tree: settings or counters have the wrong length")
-    if not (np.array_equal(t.cfg_i, fresh.cfg_i) and np.array_equal(t.cfg_f, fresh.cfg_f)):
-        raise ModelFileError("saved tree: its tables were built with other settings")
-    if not np.array_equal(t.fmap[:, :2], fresh.fmap[:, :2]) or t.fmap.shape != fresh.fmap.shape:
-        raise ModelFileError("saved tree: its tables were built for other features")
+    check_like(t, fresh, FIELDS)
     nodes, slots, cats = t.node_i.shape[0], t.free_slots.shape[0], t.c_stats.shape[2]
     expected = {"node_i": (nodes, NODE_I_COLS), "node_f": (nodes, NODE_F_COLS),
                 "lin": (nodes,) + fresh.lin.shape[1:], "lin_x": (nodes,) + fresh.lin_x.shape[1:],

@@ -26,6 +26,23 @@ def _refuse(field: str, why: str) -> ModelFileError:
     return ModelFileError(f"saved tree: {field} {why}")
 
 
+def check_like(t, fresh, fields: tuple[str, ...]) -> None:
+    """Refuse tables ``t`` whose arrays differ in type or rank from ``fresh`` (tables
+    allocated for the same settings and features), or whose settings, counter vector or
+    feature map differ from them."""
+    for name in fields:
+        a, ref = getattr(t, name), getattr(fresh, name)
+        if not isinstance(a, np.ndarray) or a.dtype != ref.dtype or a.ndim != ref.ndim:
+            raise _refuse(f"table {name!r}", "has the wrong type or rank")
+    if t.cfg_i.shape != fresh.cfg_i.shape or t.cfg_f.shape != fresh.cfg_f.shape \
+            or t.state.shape != fresh.state.shape:
+        raise ModelFileError("saved tree: settings or counters have the wrong length")
+    if not (np.array_equal(t.cfg_i, fresh.cfg_i) and np.array_equal(t.cfg_f, fresh.cfg_f)):
+        raise ModelFileError("saved tree: its tables were built with other settings")
+    if t.fmap.shape != fresh.fmap.shape or not np.array_equal(t.fmap[:, :2], fresh.fmap[:, :2]):
+        raise ModelFileError("saved tree: its tables were built for other features")
+
+
 def check_structure(t, n_features: int, detector_on: bool) -> None:
     """Refuse tables ``t`` (either tree's) whose indices or structure do not hold.
 
