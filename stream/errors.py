@@ -14,9 +14,11 @@ EXIT_OUTPUT = 3
 
 
 class SapwoodError(Exception):
-    """Base class; ``exit_code`` tells the CLI how to end."""
+    """Base class; ``exit_code`` tells the CLI how to end. ``summary``: the summary of a
+    run that learned something before the error (printed before the message)."""
 
     exit_code = EXIT_USAGE
+    summary: dict | None = None
 
 
 class ConfigError(SapwoodError):

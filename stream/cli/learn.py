@@ -8,7 +8,7 @@ import time
 
 import click
 
-from stream.errors import ConfigError, OutputError
+from stream.errors import ConfigError, SapwoodError
 from stream.rules.text import CAUTION
 
 from .output import echo
@@ -49,7 +49,7 @@ def learn(sources, **kw) -> None:
     progress = _Progress()
     try:
         summary = LearnRun(job, progress=progress).run()
-    except OutputError as exc:   # learned, but a result could not be written
+    except SapwoodError as exc:   # learned, then the input broke or a result failed
         progress.done()
         if not quiet and exc.summary is not None:
             echo(closing_report(exc.summary), err=True)

@@ -35,7 +35,8 @@ import numpy as np
 
 from connectors.base import RawBatch
 from connectors.follow import FollowControl, FollowStopped
-from stream.errors import ConfigError, OutputError, RecordError, SapwoodError, SchemaError
+from stream.errors import (ConfigError, InputError, OutputError, RecordError, SapwoodError,
+                           SchemaError)
 
 from .atomic import write_atomic
 from .encoding import NOT_A_NUMBER, EncodedBatch, Encoder
@@ -141,11 +142,16 @@ class LearnRun:
         self._pending: list[RawBatch] = []
         handlers = self._catch_signals() if job.checkpoint_path or job.follow else {}
         failures: list[str] = []
+        unreadable: InputError | None = None
         try:
             try:
                 self._read_all()
             except FollowStopped as exc:
                 self.stopped = self.stopped or exc.reason
+            except InputError as exc:     # e.g. a truncated .gz: keep what was learned
+                if self.task is None or self.task.records_learned == 0:
+                    raise
+                unreadable = exc
             if self.stopped is None and self.delayed is not None:
                 self.delayed.finish()
                 if self.checkpoint is None:
@@ -170,11 +176,17 @@ class LearnRun:
             failures += self._attempt("model", job.save_path,
                                       lambda: self.save(job.save_path))
         summary = self.summary()
+        if unreadable is not None:
+            summary["stopped"] = "input error"
+            failures.insert(0, str(unreadable))
         if failures:
             summary["failures"] = failures
         if job.summary_path:
             write_atomic(job.summary_path, json.dumps(summary, indent=2,
                                                       default=json_default) + "\n")
+        if unreadable is not None:
+            unreadable.summary = summary
+            raise unreadable
         if failures:
             raise OutputError("; ".join(failures), summary)
         return summary
@@ -203,8 +215,9 @@ class LearnRun:
                 if self.stop.is_set():
                     break
         finally:
-            # read but not yet learned (a stop or the end came during inference)
-            if self._pending and sys.exc_info()[0] in (None, FollowStopped):
+            # read but not yet learned (a stop, the end or an unreadable rest came
+            # during inference)
+            if self._pending and sys.exc_info()[0] in (None, FollowStopped, InputError):
                 self._learn_pending()
 
     def _learn_pending(self) -> None:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 from .test_main import run_main
 
 
@@ -26,3 +28,25 @@ def test_a_header_only_file_with_an_unknown_target_is_an_error(tmp_path, capsys)
     assert not (tmp_path / "m.sap").exists()
     code, _, err = run_main(["learn", data, "--target", "b"], capsys)
     assert code == 0 and "learned 0 of 0 records" in err
+
+
+def test_a_truncated_gzip_keeps_what_was_learned_and_exits_2(tmp_path, capsys):
+    # river's SEA generator (Street & Kim 2001) as plain records; gzip cut at 70%
+    import gzip
+
+    from river.datasets import synth
+
+    lines = ["x0,x1,x2,y"] + [f"{x[0]:.4f},{x[1]:.4f},{x[2]:.4f},{int(y)}"
+                             for x, y in synth.SEA(seed=4).take(300_000)]
+    packed = gzip.compress(("\n".join(lines) + "\n").encode())
+    data = tmp_path / "cut.csv.gz"
+    data.write_bytes(packed[:len(packed) * 7 // 10])
+    model, summary = tmp_path / "m.sap", tmp_path / "s.json"
+    # what a read of the broken stretch decompressed is lost with it: small batches
+    # (small reads) keep all but the last
+    code, _, err = run_main(["learn", data, "--target", "y", "--save", model,
+                             "--summary", summary, "--batch-rows", "5000"], capsys)
+    assert code == 2 and "Compressed file ended before the end-of-stream marker" in err
+    facts = json.loads(summary.read_text())
+    assert facts["stopped"] == "input error" and 0 < facts["learned"] < 300_000
+    assert model.exists() and f"learned {facts['learned']:,} of" in err
