@@ -19,6 +19,12 @@ from .errors import ConfigError
 #: at the edge (quarantined by a run, a ConfigError from the library).
 VALUE_LIMIT = 1e100
 
+#: Most codes a category feature may use (codes 0..CATEGORY_LIMIT-1), and most classes.
+#: Every leaf holds statistics per code (per class), and a multiway split may create a
+#: branch per code, so the tables are sized by this in the worst case; a run pools the
+#: values of a field beyond its cap (1,000 unless set) into one code.
+CATEGORY_LIMIT = 10_000
+
 
 def _fail(what: str, requirement: str, value: Any) -> ConfigError:
     return ConfigError(f"{what} must be {requirement}, got {value!r}")

@@ -47,7 +47,7 @@ from .tables import (ALT, ALT_OF, ALTERNATE, BRANCH, C_ADWIN_BUCKETS, C_ADWIN_CL
                      S_CATS_SEEN, S_CHILD_USED, S_CLASSES_SEEN, S_CREATED, S_DEACTIVATED,
                      S_DEAD, S_DROPS, S_EVENTS, S_FREE_NODES, S_FREE_TOP, S_LEARNED,
                      S_LEAVES, S_MAX_DEPTH, S_NODES, S_PRUNED, S_ROOT, S_SPLITS, S_STARTS,
-                     SCORED, SLOT, STATUS, THRESHOLD, WEIGHT)
+                     S_WANTS_SLOTS, SCORED, SLOT, STATUS, THRESHOLD, WEIGHT)
 
 MAJORITY, NAIVE_BAYES, ADAPTIVE = 0, 1, 2
 GAUSSIAN, HISTOGRAM = 0, 1
@@ -275,15 +275,42 @@ def leaf_cap(t) -> int:
 
 @njit
 def worst_case(t):
-    """Nodes and events one record can create at most: every tree it passes (the main
-    tree, each alternate, each alternate it may start) can split once and start an
-    alternate at each node of its path."""
+    """Nodes, events and child entries one record can create at most: every tree it
+    passes (the main tree, each alternate, each alternate it may start) can grow a branch
+    and start an alternate at each node of its path; the trees growing before the record
+    can also split once (an alternate started by this record holds one record, one
+    class: it cannot split yet)."""
     width = max(2, t.cats.shape[3] - 1)
+    depth = t.state[S_MAX_DEPTH] + 2
+    growing = 1
+    trees = 1
+    if t.cfg_i[C_DETECTOR] != NO_DETECTOR:
+        growing = 1 + t.state[S_ALTS]
+        trees = growing + depth
+    return (growing * width + trees * (depth + 1), trees * (2 * depth + 4),
+            growing * (width + 1), width)
+
+
+@njit
+def spare_slots(t) -> int:
+    """Slots kept free for the leaves one record may activate outright: a new branch
+    per level and an alternate per node of each tree's path."""
     depth = t.state[S_MAX_DEPTH] + 2
     trees = 1
     if t.cfg_i[C_DETECTOR] != NO_DETECTOR:
         trees = 1 + t.state[S_ALTS] + depth
-    return trees * (width + depth + 1), trees * (2 * depth + 4), trees * (width + 1), width
+    return trees * (depth + 2)
+
+
+@njit
+def slots_needed(t) -> int:
+    """Statistics slots the tables must hold before a record is learned: the leaves
+    active now or the live leaves the budget allows, plus :func:`spare_slots`. The
+    children of a split and reactivated leaves take a slot only when one is free
+    beyond the spare ones (:func:`activate_if_room`), so a split into many branches
+    never reserves slots ahead."""
+    allowed = min(t.state[S_LEAVES], leaf_cap(t))
+    return max(t.state[S_ACTIVE], allowed) + spare_slots(t)
 
 
 @njit
@@ -293,9 +320,8 @@ def has_room(t) -> bool:
     nodes_free = t.node_i.shape[0] - t.state[S_NODES] + t.state[S_FREE_NODES]
     children_free = t.child_table.shape[0] - t.state[S_CHILD_USED]
     events_free = t.events_i.shape[0] - t.state[S_EVENTS]
-    needed_slots = min(t.state[S_LEAVES], leaf_cap(t)) + nodes
     return nodes_free > nodes and children_free > children and events_free > events and \
-        t.free_slots.shape[0] >= needed_slots
+        t.free_slots.shape[0] >= slots_needed(t)
 
 
 # ---------------------------------------------------------------- nodes, slots, detectors
@@ -341,6 +367,17 @@ def activate(t, n: int) -> None:
 
 
 @njit
+def activate_if_room(t, n: int) -> None:
+    """Activate leaf ``n`` if a slot is free beyond the spare ones; otherwise mark that
+    leaves wait for slots: the record loop returns after this record, Python grows the
+    slot tables and the next call activates them first, before any record reads them."""
+    if t.state[S_FREE_TOP] > spare_slots(t):
+        activate(t, n)
+    else:
+        t.state[S_WANTS_SLOTS] = 1
+
+
+@njit
 def enforce_leaf_cap(t) -> None:
     """Keep the most promising leaves active, at most the cap; reactivate others if room.
 
@@ -370,7 +407,7 @@ def enforce_leaf_cap(t) -> None:
     for r in range(m - keep, m):
         n = ids[order[r]]
         if t.node_i[n, SLOT] < 0 and t.node_i[n, DEPTH] < t.cfg_i[C_MAX_DEPTH]:
-            activate(t, n)
+            activate_if_room(t, n)
 
 
 @njit
@@ -443,7 +480,8 @@ def split_leaf(t, n: int, f: int, kind: int, threshold: float, merit: float,
         t.node_f[c, WEIGHT] = total
         t.node_f[c, LAST_ATTEMPT] = total
         t.child_table[start + b] = c
-        activate(t, c)
+        if t.state[S_ACTIVE] < leaf_cap(t):   # the rest wait for enforce_leaf_cap
+            activate_if_room(t, c)
     t.state[S_SPLITS] += 1
 
 
@@ -745,6 +783,11 @@ def learn_batch(t, X, y, start: int, rank, pred, confidence, leaf) -> int:
     scratch = np.empty(t.node_i.shape[0] + 1, np.int64)
     stack = np.empty(t.node_i.shape[0] + 1, np.int64)
     votes = np.zeros(n_classes)
+    if state[S_WANTS_SLOTS] != 0:     # leaves left waiting for slots take them first
+        state[S_WANTS_SLOTS] = 0
+        enforce_leaf_cap(t)
+        if state[S_WANTS_SLOTS] != 0:
+            return start
     room_left = 0
     classes_seen = state[S_CLASSES_SEEN]
     cats_seen = state[S_CATS_SEEN]
@@ -903,6 +946,8 @@ def learn_batch(t, X, y, start: int, rank, pred, confidence, leaf) -> int:
             top = learn_watched(t, stack[top], x, k, record, path, rank, mc, nb, stack,
                                 top, False, 0, 0, False, 0, 0, 0, 0.0)
         state[S_LEARNED] = record + 1
+        if state[S_WANTS_SLOTS] != 0:
+            return i + 1          # leaves wait for slots: Python grows the tables
         if state[S_CREATED] + state[S_EVENTS] != changes or state[S_SPLITS] != splits:
             room_left = 0
             splits = state[S_SPLITS]

@@ -21,9 +21,10 @@ import numpy as np
 
 from stream.errors import ConfigError, ModelFileError
 from stream.tree.upkeep import DriftEvent, TableOps, TableUpkeep
-from stream.tree.views import check_features
+from stream.checks import CATEGORY_LIMIT
+from stream.tree.inputs import check_features, check_rows
 
-from .kernel import has_room, leaf_cap, learn_batch, predict_batch, worst_case
+from .kernel import has_room, learn_batch, predict_batch, slots_needed, worst_case
 from .settings import TreeSettings
 from .tables import (S_CLASSES_SEEN, S_PRUNED, ClassifierTables, allocate, capacities,
                      check_tables, grow)
@@ -53,7 +54,7 @@ class TreeClassifier(TableUpkeep):
         How the tree grows; :class:`stream.classify.settings.TreeSettings` defaults if omitted.
     """
 
-    _ops = TableOps(capacities, grow, has_room, worst_case, leaf_cap)
+    _ops = TableOps(capacities, grow, has_room, worst_case, slots_needed)
 
     def __init__(self, feature_names: list[str], feature_kinds: list[str],
                  settings: TreeSettings | None = None) -> None:
@@ -78,11 +79,8 @@ class TreeClassifier(TableUpkeep):
         only names category values in the paths of drift events.
         """
         self._categories = categories or {}
-        X = np.ascontiguousarray(X, dtype=np.float64)
+        X = check_rows(X, self.feature_names, self._category_columns)
         y = np.ascontiguousarray(y, dtype=np.int32)
-        if X.ndim != 2 or X.shape[1] != len(self.feature_names):
-            raise ConfigError(f"X must have {len(self.feature_names)} columns, got shape "
-                              f"{X.shape}")
         if y.shape[0] != X.shape[0]:
             raise ConfigError(f"y must have {X.shape[0]} values, got {y.shape[0]}")
         self._set_classes(classes)
@@ -100,7 +98,7 @@ class TreeClassifier(TableUpkeep):
 
     def predict(self, X: np.ndarray) -> Scored:
         """Score rows of ``X`` without learning."""
-        X = np.ascontiguousarray(X, dtype=np.float64)
+        X = check_rows(X, self.feature_names, self._category_columns)
         n = X.shape[0]
         scored = Scored(np.empty(n, np.int32), np.empty(n), np.empty(n, np.int32))
         predict_batch(self.tables_, X, self._rank(), scored.pred, scored.confidence,
@@ -110,6 +108,9 @@ class TreeClassifier(TableUpkeep):
     # ------------------------------------------------------------------ capacity
     def _set_classes(self, classes: list[str]) -> None:
         classes = [str(c) for c in classes]
+        if len(classes) > CATEGORY_LIMIT:
+            raise ConfigError(f"a tree takes at most {CATEGORY_LIMIT:,} classes, got "
+                              f"{len(classes):,}")
         if classes[:len(self.classes_)] != self.classes_:
             raise ConfigError("class labels may only be appended, got "
                               f"{classes!r} after {self.classes_!r}")

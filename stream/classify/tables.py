@@ -78,7 +78,7 @@ from stream.tree.layout import (ALT, ALT_OF, ALTERNATE, BRANCH, CHILD_START, CRE
                                 S_CHILD_USED, S_CREATED, S_DEACTIVATED, S_DEAD, S_DROPS,
                                 S_EVENTS, S_FREE_DETS, S_FREE_NODES, S_FREE_TOP, S_LEARNED,
                                 S_LEAVES, S_MAX_DEPTH, S_NODES, S_ROOT, S_SPLITS, S_STARTS,
-                                S_SWAPS, SLOT, STATE_SIZE, STATUS, SWAPPED, detector_shapes,
+                                S_SWAPS, S_WANTS_SLOTS, SLOT, STATE_SIZE, STATUS, SWAPPED, detector_shapes,
                                 event_capacity, feature_map, grow_node_rows,
                                 grow_slot_stack, node_arrays, plant_root, relay_children,
                                 resized)

@@ -65,7 +65,8 @@ from stream.tree.kernel import deactivate, next_node, recycle_dead
 
 from .criteria import split_confident
 from .drift import error_scale_update, error_unit, normalised_error
-from .nodes import activate, enforce_leaf_cap, fresh_detector, leaf_cap, new_leaf, react
+from .nodes import (activate, activate_if_room, enforce_leaf_cap, fresh_detector, leaf_cap,
+                    new_leaf, react, spare_slots)
 from .splits import category_best, observe, quantile_best
 from .tables import (ABS_ERROR, ALT, CHILD_START, DEPTH, DET, EQUALS, ERR_LINEAR, ERR_MEAN,
                      ERR_N, ERR_SQ, ERR_SUM, FEATURE, FM_KIND, FM_LOCAL, FM_SEEN, KIND,
@@ -74,7 +75,8 @@ from .tables import (ABS_ERROR, ALT, CHILD_START, DEPTH, DET, EQUALS, ERR_LINEAR
                      RC_ADWIN_MIN_LEN, RC_BINARY_CATS, RC_CRITERION, RC_DETECTOR, RC_GRACE,
                      RC_LEAF_MODEL, RC_MAX_DEPTH, RC_MIN_BRANCH, RC_PH_MIN, RC_PH_MODE,
                      RF_ADWIN_DELTA, RF_DECAY, RF_DELTA, RF_PH_ALPHA, RF_PH_DELTA,
-                     RF_PH_THRESHOLD, RF_RATE, RF_SCALE_FADING, RF_TAU, S_ALTS, S_CATS_SEEN,
+                     RF_PH_THRESHOLD, RF_RATE, RF_SCALE_FADING, RF_TAU, S_ACTIVE, S_ALTS, S_CATS_SEEN,
+                     S_WANTS_SLOTS,
                      S_CHILD_USED, S_CREATED, S_DEAD, S_EVENTS, S_FREE_NODES, S_LEARNED,
                      S_LEAVES, S_MAX_DEPTH, S_NODES, S_ROOT, S_SPLITS, SC_INV, SC_M2,
                      SC_MEAN, SC_N, SC_SD, SCORED, SLOT, SQ_ERROR, ST_N, STATUS, THRESHOLD,
@@ -160,6 +162,7 @@ def route_to_learn(t, root: int, X, i: int, record: int) -> int:
             c = new_leaf(t, n, code, t.node_i[n, STATUS], record, n)
             t.child_table[t.node_i[n, CHILD_START] + code] = c
             activate(t, c)
+            enforce_leaf_cap(t)
         n = c
     return n
 
@@ -478,13 +481,18 @@ def predict_one(t, X, i: int, path, scratch, z, cols):
 def worst_case(t):
     """(nodes, events, child entries) one record can need at most: every tree it passes
     (the main tree, each alternate, each alternate it may start) can grow a new branch
-    at each level, split once and start an alternate at each node of its path."""
+    at each level and start an alternate at each node of its path; the trees growing
+    before the record can also split once (an alternate started by this record has
+    empty split statistics but for this record: it cannot split yet)."""
     width = max(2, t.c_stats.shape[2])
     depth = t.state[S_MAX_DEPTH] + 2
+    growing = 1
     trees = 1
     if t.cfg_i[RC_DETECTOR] != NO_DETECTOR:
-        trees = 1 + t.state[S_ALTS] + depth
-    return trees * (width + depth + 1), trees * (2 * depth + 4), trees * (width + 1)
+        growing = 1 + t.state[S_ALTS]
+        trees = growing + depth
+    return growing * width + trees * (depth + 1), trees * (2 * depth + 4), \
+        growing * (width + 1)
 
 
 @njit
@@ -495,9 +503,19 @@ def has_room(t) -> bool:
     nodes_free = t.node_i.shape[0] - t.state[S_NODES] + t.state[S_FREE_NODES]
     children_free = t.child_table.shape[0] - t.state[S_CHILD_USED]
     events_free = t.events_i.shape[0] - t.state[S_EVENTS]
-    needed_slots = min(t.state[S_LEAVES], leaf_cap(t)) + nodes
     return nodes_free > nodes and children_free > children and events_free > events and \
-        t.free_slots.shape[0] >= needed_slots
+        t.free_slots.shape[0] >= slots_needed(t)
+
+
+@njit
+def slots_needed(t) -> int:
+    """Statistics slots the tables must hold before a record is learned: the leaves
+    active now or the live leaves the budget allows, plus the spare ones
+    (:func:`stream.regress.nodes.spare_slots`). The children of a split and reactivated
+    leaves take a slot only when one is free beyond the spare ones, so a split into many
+    branches never reserves slots ahead."""
+    allowed = min(t.state[S_LEAVES], leaf_cap(t))
+    return max(t.state[S_ACTIVE], allowed) + spare_slots(t)
 
 
 # ---------------------------------------------------------------- splitting
@@ -510,7 +528,8 @@ def start_child(t, parent: int, branch: int, record: int, stats) -> int:
     t.node_f[c, Y_MEAN] = stats[1]
     t.node_f[c, Y_M2] = stats[2]
     t.node_f[c, WEIGHT] = stats[0]
-    activate(t, c)
+    if t.state[S_ACTIVE] < leaf_cap(t):   # the rest wait for enforce_leaf_cap
+        activate_if_room(t, c)
     return c
 
 
@@ -638,6 +657,11 @@ def learn_batch(t, X, y, start: int, pred, leaf, plain: bool) -> int:
     path = np.empty(node_i.shape[0] + 1, np.int64)
     scratch = np.empty(node_i.shape[0] + 1, np.int64)
     stack = np.empty(node_i.shape[0] + 1, np.int64)
+    if state[S_WANTS_SLOTS] != 0:     # leaves left waiting for slots take them first
+        state[S_WANTS_SLOTS] = 0
+        enforce_leaf_cap(t)
+        if state[S_WANTS_SLOTS] != 0:
+            return start
     room_left = 0
     splits = state[S_SPLITS]
     for i in range(start, X.shape[0]):
@@ -771,6 +795,8 @@ def learn_batch(t, X, y, start: int, pred, leaf, plain: bool) -> int:
         if watching:
             error_scale_update(err_scale, target, fading)
         state[S_LEARNED] = record + 1
+        if state[S_WANTS_SLOTS] != 0:
+            return i + 1          # leaves wait for slots: Python grows the tables
         if state[S_CREATED] + state[S_EVENTS] != changes or state[S_SPLITS] != splits:
             room_left = 0
             splits = state[S_SPLITS]

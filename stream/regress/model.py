@@ -19,10 +19,9 @@ import numpy as np
 from stream.checks import VALUE_LIMIT
 from stream.errors import ConfigError, ModelFileError
 from stream.tree.upkeep import DriftEvent, TableOps, TableUpkeep
-from stream.tree.views import check_features
+from stream.tree.inputs import check_features, check_rows
 
-from .kernel import has_room, learn_batch, predict_batch, worst_case
-from .nodes import leaf_cap
+from .kernel import has_room, learn_batch, predict_batch, slots_needed, worst_case
 from .settings import RegressionSettings
 from .tables import RegressorTables, allocate, capacities, check_tables, grow
 
@@ -51,7 +50,7 @@ class TreeRegressor(TableUpkeep):
         defaults if omitted.
     """
 
-    _ops = TableOps(capacities, grow, has_room, worst_case, leaf_cap)
+    _ops = TableOps(capacities, grow, has_room, worst_case, slots_needed)
 
     def __init__(self, feature_names: list[str], feature_kinds: list[str],
                  settings: RegressionSettings | None = None) -> None:
@@ -98,27 +97,7 @@ class TreeRegressor(TableUpkeep):
         return scored
 
     def _check_X(self, X: np.ndarray) -> np.ndarray:
-        X = np.ascontiguousarray(X, dtype=np.float64)
-        if X.ndim != 2 or X.shape[1] != len(self.feature_names):
-            raise ConfigError(f"X must have {len(self.feature_names)} columns, got shape "
-                              f"{X.shape}")
-        with np.errstate(invalid="ignore"):
-            infinite = np.abs(X) > VALUE_LIMIT
-        if infinite.any():
-            row, col = np.argwhere(infinite)[0]
-            raise ConfigError(f"values must be finite numbers of magnitude at most "
-                              f"{VALUE_LIMIT:g} or NaN (missing), got "
-                              f"{float(X[row, col])!r} in field {self.feature_names[col]!r} at row "
-                              f"{int(row)}")
-        if self._category_columns.size:
-            codes = X[:, self._category_columns]
-            bad = ~np.isnan(codes) & ((codes < 0) | (codes != np.floor(codes)))
-            if bad.any():
-                row, col = np.argwhere(bad)[0]
-                name = self.feature_names[self._category_columns[col]]
-                raise ConfigError(f"category codes must be whole numbers >= 0, got "
-                                  f"{float(codes[row, col])!r} in field {name!r} at row {int(row)}")
-        return X
+        return check_rows(X, self.feature_names, self._category_columns)
 
     # ------------------------------------------------------------------ state
     def state(self) -> tuple[dict, dict[str, np.ndarray]]:

@@ -4,9 +4,10 @@ the classifier, are in :mod:`stream.tree.kernel`.
 
 Contents
 --------
-new_leaf / fresh_detector / activate
-    A leaf from the free-id stack (or the end of the table) with a fresh detector; an
-    statistics slot given (:func:`stream.tree.kernel.deactivate` takes it back).
+new_leaf / fresh_detector / activate / spare_slots / activate_if_room
+    A leaf from the free-id stack (or the end of the table) with a fresh detector; a
+    statistics slot given (:func:`stream.tree.kernel.deactivate` takes it back), or
+    a leaf left waiting when no slot is free beyond those kept for one record.
 leaf_bytes / leaf_cap / enforce_leaf_cap
     The memory budget of the active leaves' split statistics.
 start_alternate / react
@@ -35,7 +36,8 @@ from .tables import (ALT, ALT_OF, ALTERNATE, BRANCH, DEPTH, DET, ERR_LINEAR, ERR
                      OBSERVED, PARENT, RC_DETECTOR, RC_MAX_DEPTH, RC_SWAP_AFTER,
                      RF_MEMORY_BYTES, RF_PH_THRESHOLD, RF_SWAP_SIGNIFICANCE, S_ACTIVE,
                      S_ALARMS, S_ALTS, S_CATS_SEEN, S_DEACTIVATED, S_DROPS, S_FREE_TOP,
-                     S_LEAVES, S_NODES, S_STARTS, SLOT, STATUS, Y_M2)
+                     S_LEAVES, S_MAX_DEPTH, S_NODES, S_STARTS, S_WANTS_SLOTS, SLOT, STATUS,
+                     Y_M2)
 
 
 # ---------------------------------------------------------------- leaves and slots
@@ -84,6 +86,28 @@ def activate(t, n: int) -> None:
     t.node_f[n, OBSERVED] = 0.0
     t.node_f[n, LAST_ATTEMPT] = 0.0
     t.state[S_ACTIVE] += 1
+
+
+@njit
+def spare_slots(t) -> int:
+    """Slots kept free for the leaves one record may activate outright: a new branch
+    per level and an alternate per node of each tree's path."""
+    depth = t.state[S_MAX_DEPTH] + 2
+    trees = 1
+    if t.cfg_i[RC_DETECTOR] != NO_DETECTOR:
+        trees = 1 + t.state[S_ALTS] + depth
+    return trees * (depth + 2)
+
+
+@njit
+def activate_if_room(t, n: int) -> None:
+    """Activate leaf ``n`` if a slot is free beyond the spare ones; otherwise mark that
+    leaves wait for slots: the record loop returns after this record, Python grows the
+    slot tables and the next call activates them first, before any record reads them."""
+    if t.state[S_FREE_TOP] > spare_slots(t):
+        activate(t, n)
+    else:
+        t.state[S_WANTS_SLOTS] = 1
 
 
 # ---------------------------------------------------------------- memory budget
@@ -135,7 +159,7 @@ def enforce_leaf_cap(t) -> None:
     for r in range(m - keep, m):
         n = ids[order[r]]
         if t.node_i[n, SLOT] < 0 and t.node_i[n, DEPTH] < t.cfg_i[RC_MAX_DEPTH]:
-            activate(t, n)
+            activate_if_room(t, n)
 
 
 # ---------------------------------------------------------------- alternates

@@ -58,6 +58,7 @@ S_DROPS = 19         # alternates dropped
 S_MAX_DEPTH = 20     # deepest node ever created (a bound for path buffers)
 S_DEAD = 21          # dead nodes not yet recycled
 S_CREATED = 22       # nodes ever created (a change counter)
+S_WANTS_SLOTS = 23   # 1: leaves wait for statistics slots (the loop returns to grow them)
 STATE_SIZE = 32
 
 

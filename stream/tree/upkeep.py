@@ -16,7 +16,8 @@ import numpy as np
 
 from .layout import (EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER, EV_RECORD,
                      EVENT_NAMES, S_ALARMS, S_ALTS, S_CHILD_USED, S_DEACTIVATED, S_DROPS,
-                     S_EVENTS, S_FREE_NODES, S_LEAVES, S_NODES, S_SPLITS, S_STARTS, S_SWAPS)
+                     S_EVENTS, S_FREE_NODES, S_NODES, S_SPLITS, S_STARTS, S_SWAPS,
+                     S_WANTS_SLOTS)
 from .views import MainTreeViews
 
 
@@ -42,13 +43,14 @@ class DriftEvent:
 class TableOps(NamedTuple):
     """A tree's table functions: Python's ``capacities`` and ``grow``, the kernels'
     ``has_room``, ``worst_case`` (nodes, events and child entries one record may need
-    first) and ``leaf_cap``."""
+    first) and ``slots_needed`` (statistics slots the memory budget allows, plus
+    what one record may activate)."""
 
     capacities: Callable
     grow: Callable
     has_room: Callable
     worst_case: Callable
-    leaf_cap: Callable
+    slots_needed: Callable
 
 
 class TableUpkeep(MainTreeViews):
@@ -83,9 +85,10 @@ class TableUpkeep(MainTreeViews):
         while True:
             done = learn_from(done)
             self._collect_events()
-            if done >= n:
+            waiting = bool(self.tables_.state[S_WANTS_SLOTS])
+            if done >= n and not waiting:
                 return
-            if not self._ops.has_room(self.tables_):
+            if waiting or not self._ops.has_room(self.tables_):
                 self._make_room()
 
     def _collect_events(self) -> None:
@@ -123,11 +126,12 @@ class TableUpkeep(MainTreeViews):
         nodes_free = cap["nodes"] - int(t.state[S_NODES]) + int(t.state[S_FREE_NODES])
         need_nodes = nodes_free <= nodes or \
             t.events_i.shape[0] - int(t.state[S_EVENTS]) <= events
-        need_slots = min(int(t.state[S_LEAVES]), ops.leaf_cap(t)) + nodes
+        need_slots = int(ops.slots_needed(t))
+        short = cap["slots"] < need_slots or t.state[S_WANTS_SLOTS]
         self.tables_ = ops.grow(
             t,
             nodes=2 * cap["nodes"] + nodes + events if need_nodes else 0,
-            slots=max(2 * cap["slots"], need_slots) if cap["slots"] < need_slots else 0,
+            slots=max(2 * cap["slots"], need_slots) if short else 0,
             children=(2 * cap["children"] + children
                       if cap["children"] - t.state[S_CHILD_USED] <= children else 0),
         )

@@ -1,5 +1,4 @@
-"""Read-only views of a tree's main part, shared by the classifier and the regressor,
-and the check of the feature arguments both constructors take.
+"""Read-only views of a tree's main part, shared by the classifier and the regressor.
 
 Both learners keep their nodes in tables with the node layout of
 :mod:`stream.tree.layout`; :class:`MainTreeViews` reads them. A subclass holds ``tables_``.
@@ -9,23 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from stream.errors import ConfigError
-
 from .kernel import tree_shape
 from .layout import CHILD_START, KIND, LEAF, N_CHILDREN, S_ACTIVE, S_LEARNED, S_ROOT
-
-
-def check_features(feature_names: list[str], feature_kinds: list[str]) -> None:
-    """:class:`ConfigError` unless there is at least one feature and each has a kind,
-    ``"numeric"`` or ``"category"``."""
-    if len(feature_names) != len(feature_kinds):
-        raise ConfigError("feature names and kinds must have the same length, got "
-                          f"{len(feature_names)} and {len(feature_kinds)}")
-    bad = [k for k in feature_kinds if k not in ("numeric", "category")]
-    if bad:
-        raise ConfigError(f"feature kind must be 'numeric' or 'category', got {bad[0]!r}")
-    if not feature_names:
-        raise ConfigError("a tree needs at least one feature, got none")
 
 
 class MainTreeViews:
