@@ -25,24 +25,31 @@ from .common import (MB, Bench, Check, Column, SuiteResult, fmt_count, fmt_mb, f
                      fmt_ratio, register)
 
 
-def write_sea_csv(path: Path, rows: int, seed: int, chunk: int = 250_000) -> Path:
+def write_sea_csv(path: Path, rows: int, seed: int, chunk: int = 250_000,
+                  tag: bool = False) -> Path:
     """Write a CSV of the SEA concept (Street & Kim 2001), drawn with numpy in chunks.
 
     Columns x0, x1, x2 uniform in [0, 10] with 4 decimals, ``label`` ``yes`` when
-    x0 + x1 <= 8, flipped for 10 % of the rows.
+    x0 + x1 <= 8, flipped for 10 % of the rows. With ``tag``, a first column ``tag``
+    holds a different text value in every row (a category with as many values as rows).
     """
     import pandas as pd
 
     rng = np.random.default_rng(seed)
+    tags = np.random.default_rng(seed + 1).permutation(rows) if tag else None
     with open(path, "w", encoding="utf-8", newline="") as out:
-        out.write("x0,x1,x2,label\n")
+        out.write(("tag," if tag else "") + "x0,x1,x2,label\n")
         for first in range(0, rows, chunk):
             k = min(chunk, rows - first)
             X = rng.uniform(0.0, 10.0, (k, 3))
             positive = (X[:, 0] + X[:, 1] <= 8.0) ^ (rng.random(k) < 0.1)
-            frame = pd.DataFrame({"x0": X[:, 0], "x1": X[:, 1], "x2": X[:, 2],
-                                  "label": np.where(positive, "yes", "no")})
-            out.write(frame.to_csv(index=False, header=False, float_format="%.4f"))
+            columns = {"x0": X[:, 0], "x1": X[:, 1], "x2": X[:, 2],
+                       "label": np.where(positive, "yes", "no")}
+            if tags is not None:
+                columns = {"tag": np.char.add("t", tags[first:first + k].astype(str)),
+                           **columns}
+            out.write(pd.DataFrame(columns).to_csv(index=False, header=False,
+                                                   float_format="%.4f"))
     return path
 
 
@@ -248,36 +255,46 @@ def end_to_end_suite(bench: Bench) -> SuiteResult:
 
 @register("memory")
 def memory_suite(bench: Bench) -> SuiteResult:
-    """Peak memory of ``sapwood learn -`` on a short and a long stream through a pipe."""
+    """Peak memory of ``sapwood learn -`` on a short and a long stream through a pipe, and
+    on the short one with a category holding a different value in every row."""
     small, large = bench.memory_rows
     result = SuiteResult(
         "memory",
         f"memory: peak of sapwood learn - reading {small:,} and {large:,} rows through a pipe",
-        [Column("rows", "rows", fmt_count), Column("peak_mb", "peak MB", fmt_mb),
+        [Column("stream", "stream", left=True), Column("rows", "rows", fmt_count),
+         Column("peak_mb", "peak MB", fmt_mb),
          Column("sapwood_rps", "sapwood rec/s", fmt_count),
          Column("wall_seconds", "child wall s", lambda v: f"{v:.2f}")])
     warm = warm_child(bench)
     peaks = {}
-    for rows in (small, large):
-        path = bench.workdir / f"memory-{rows}.csv"
+    for rows, tag in ((small, False), (large, False), (small, True)):
+        path = bench.workdir / f"memory-{rows}{'-tag' if tag else ''}.csv"
         bench.say(f"memory: writing {rows:,} rows, then sapwood learn - through a pipe")
-        write_sea_csv(path, rows, bench.seed)
+        write_sea_csv(path, rows, bench.seed, tag=tag)
         run = learn_child(bench, path, "label", pipe=True)
         path.unlink()
-        peaks[rows] = run.peak_mb
-        result.rows.append({"rows": rows, "peak_mb": run.peak_mb,
+        peaks[rows, tag] = run.peak_mb
+        result.rows.append({"stream": f"SEA + {rows:,}-value tag" if tag else "SEA",
+                            "rows": rows, "peak_mb": run.peak_mb,
                             "sapwood_rps": run.summary["records_per_second"],
                             "wall_seconds": run.wall_seconds,
                             "sapwood_records": run.summary["records"]})
         if run.summary["records"] != rows:
             result.notes.append(f"WARNING: sapwood counted {run.summary['records']:,} of "
                                 f"{rows:,} rows.")
-    growth = (peaks[large] / peaks[small]
-              if peaks[large] is not None and peaks[small] else None)
+    plain, long, tagged = peaks[small, False], peaks[large, False], peaks[small, True]
+    growth = long / plain if long is not None and plain else None
+    many = tagged / plain if tagged is not None and plain else None
     result.checks = [
-        Check(f"peak memory, {large:,} rows on stdin", peaks[large], 300.0, "<=", "MB"),
+        Check(f"peak memory, {large:,} rows on stdin", long, 300.0, "<=", "MB"),
         Check(f"peak memory, {large:,} rows / {small:,} rows", growth, 1.2, "<=", "x"),
+        Check(f"peak memory, {small:,} rows with a {small:,}-value category", tagged, 500.0,
+              "<=", "MB"),
+        Check("peak memory with that category / without it", many, 2.0, "<=", "x"),
     ]
+    result.notes.append("The tag column: a different text value in every row, read as a "
+                        "category (its first 1,000 values kept apart, later ones pooled "
+                        "as one: --category-cap).")
     result.notes.append("Peak = the child's VmHWM (Linux /proc, polled every 5 ms), whole "
                         "process: interpreter, numpy, pandas, numba and the loaded kernels "
                         "included; 1 MB = 10^6 bytes. Data: the SEA-concept CSV of the "

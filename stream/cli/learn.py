@@ -91,7 +91,8 @@ def learn_job(sources: list[str], kw: dict):
         metrics_path=kw["metrics_path"], metrics_every=kw["metrics_every"],
         quarantine_path=kw["quarantine_path"], strict=kw["strict"],
         predictions_path=kw["predictions_path"], events_path=kw["events_path"],
-        window=kw["window"], batch_rows=kw["batch_rows"], follow=kw["follow"],
+        window=kw["window"], batch_rows=kw["batch_rows"], category_cap=kw["category_cap"],
+        class_cap=kw["class_cap"], follow=kw["follow"],
         poll_seconds=kw["poll_seconds"], idle_exit=kw["idle_exit"],
         labels=list(kw["label_sources"]),
         label_window=DEFAULT_LABEL_WINDOW if kw["label_window"] is None

@@ -21,6 +21,7 @@ from connectors.sources import FORMATS
 from stream.classify.settings import CRITERIA, LEAF_MODELS, NUMERIC_SPLITS
 from stream.errors import ConfigError
 from stream.regress.settings import REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS
+from stream.run.encoding import DEFAULT_CATEGORY_CAP, DEFAULT_CLASS_CAP
 from stream.tree.settings import DETECTORS
 
 from .output import echo
@@ -196,6 +197,15 @@ def input_options() -> Callable:
         option("--batch-rows", group=INPUT, type=int, default=65536, show_default=True,
                help="Records read per batch (memory vs. call overhead; results are "
                     "equal)."),
+        option("--category-cap", group=INPUT, type=int, default=DEFAULT_CATEGORY_CAP,
+               show_default=True,
+               help="Distinct values a category field keeps apart; later new values are "
+                    "learned as one, '(other values)' (each value costs memory in every "
+                    "leaf)."),
+        option("--class-cap", group=INPUT, type=int, default=DEFAULT_CLASS_CAP,
+               show_default=True,
+               help="Classes the target may have; records with more go to the "
+                    "quarantine."),
         option("--strict", group=INPUT, is_flag=True, help="Stop at the first bad record."),
         option("--quarantine", "quarantine_path", group=INPUT,
                type=click.Path(dir_okay=False),

@@ -20,8 +20,8 @@ import numpy as np
 import pandas as pd
 
 from connectors.base import RawBatch, Reject
-from stream.checks import VALUE_LIMIT
-from stream.errors import ModelFileError
+from stream.checks import CATEGORY_LIMIT, VALUE_LIMIT, require_int
+from stream.errors import ConfigError, ModelFileError
 
 from .schema import Schema
 from .values import (as_array, factorize_labels, label_texts, missing_mask, parse_numbers,
@@ -38,6 +38,14 @@ _REASON_FINITE = "is not a finite number"
 _REASON_RANGE = f"is beyond the learner's range (magnitude above {VALUE_LIMIT:g})"
 _REASON_TIME = "is not a time"
 _REASON_NO_TARGET = "has no target value"
+BEYOND_CLASS_CAP = "is a new class beyond the class cap"
+
+#: Name of the code shared by a category field's values beyond its cap.
+OTHER_VALUES = "(other values)"
+#: Distinct values a category field keeps apart, and classes a target may have, unless
+#: the run sets them (``--category-cap``, ``--class-cap``); at most CATEGORY_LIMIT.
+DEFAULT_CATEGORY_CAP = 1000
+DEFAULT_CLASS_CAP = 1000
 
 
 
@@ -81,20 +89,48 @@ class EncodedBatch:
 
 
 class _Codebook:
-    """Label -> code in first-seen order; new labels get the next code."""
+    """Label -> code in first-seen order; new labels get the next code.
 
-    def __init__(self, labels: list[str] | None = None) -> None:
+    With a ``cap``, the first ``cap`` labels get codes 0..cap-1 and every later new
+    label shares code ``cap``, shown as :data:`OTHER_VALUES`: each code costs memory in
+    every leaf of the tree, so a field with ever more values (an identifier, a free
+    text) must not grow without bound. ``pooled`` counts the rows given that code;
+    ``first_pooled`` is the first label pooled (None before) and ``reached_at`` the
+    number of rows with a value encoded before it.
+    """
+
+    def __init__(self, labels: list[str] | None = None, cap: int | None = None,
+                 pooled: int = 0, first_pooled: str | None = None,
+                 reached_at: int = 0) -> None:
         self.labels: list[str] = []
         self.codes: dict[str, int] = {}
+        self.cap = cap
+        self.pooled = pooled
+        self.first_pooled = first_pooled
+        self.reached_at = reached_at
+        self.rows = 0
         for label in labels or []:
             self.add(label)
+
+    @property
+    def full(self) -> bool:
+        return self.cap is not None and len(self.labels) >= self.cap
 
     def add(self, label: str) -> int:
         code = self.codes.get(label)
         if code is None:
+            if self.full:
+                if self.first_pooled is None:
+                    self.first_pooled = label
+                return len(self.labels)
             code = self.codes[label] = len(self.labels)
             self.labels.append(label)
         return code
+
+    def shown(self) -> list[str]:
+        """Labels in code order, with the shared code's name once values were pooled."""
+        return self.labels + [OTHER_VALUES] if self.first_pooled is not None else \
+            list(self.labels)
 
     def encode(self, codes: np.ndarray, labels: list[str | None],
                keep: np.ndarray) -> np.ndarray:
@@ -109,7 +145,16 @@ class _Codebook:
             label = labels[unique]
             if label is not None:
                 lut[unique] = self.add(label)
-        return lut[codes]  # -1 indexes the trailing -1
+        mapped = lut[codes]  # -1 indexes the trailing -1
+        present = mapped[keep]
+        present = present[present >= 0]
+        if self.first_pooled is not None:
+            in_pool = np.flatnonzero(present == len(self.labels))
+            if not self.pooled and in_pool.size:
+                self.reached_at = self.rows + int(in_pool[0])
+            self.pooled += int(in_pool.size)
+        self.rows += present.size
+        return mapped
 
 
 class Encoder:
@@ -119,13 +164,26 @@ class Encoder:
     ----------
     schema
         Fields, target and task.
+    category_cap
+        Distinct values each category field keeps apart; later new values share one
+        code, :data:`OTHER_VALUES` (see :class:`_Codebook`).
+    class_cap
+        Classes the target may have; a record bringing one more is rejected with
+        :data:`BEYOND_CLASS_CAP`.
     """
 
-    def __init__(self, schema: Schema) -> None:
+    def __init__(self, schema: Schema, category_cap: int = DEFAULT_CATEGORY_CAP,
+                 class_cap: int = DEFAULT_CLASS_CAP) -> None:
+        require_int("category cap", category_cap, 1)
+        require_int("class cap", class_cap, 2)
+        for what, cap in (("category cap", category_cap), ("class cap", class_cap)):
+            if cap > CATEGORY_LIMIT:
+                raise ConfigError(f"{what} must be at most {CATEGORY_LIMIT:,}, got {cap!r}")
         self.schema = schema
-        self._books = {name: _Codebook() for name, kind
+        self.category_cap = category_cap
+        self._books = {name: _Codebook(cap=category_cap) for name, kind
                        in zip(schema.feature_names, schema.feature_kinds) if kind == "category"}
-        self._classes = _Codebook()
+        self._classes = _Codebook(cap=class_cap)
         self._known = {field.name for field in schema.fields}
         self.unknown_fields: dict[str, int] = {}
 
@@ -136,8 +194,22 @@ class Encoder:
 
     @property
     def categories(self) -> dict[str, list[str]]:
-        """Category labels in code order, per category feature."""
-        return {name: list(book.labels) for name, book in self._books.items()}
+        """Category labels in code order, per category feature (with
+        :data:`OTHER_VALUES` last once a field's values were pooled)."""
+        return {name: book.shown() for name, book in self._books.items()}
+
+    @property
+    def class_cap(self) -> int:
+        """Classes the target may have."""
+        return int(self._classes.cap)
+
+    @property
+    def pooled(self) -> dict[str, dict]:
+        """Per category field that reached its cap: the rows given the shared code and
+        the first value pooled."""
+        return {name: {"records": book.pooled, "first": book.first_pooled,
+                       "after": book.reached_at}
+                for name, book in self._books.items() if book.first_pooled is not None}
 
     def encode(self, batch: RawBatch, scoring: bool = False) -> EncodedBatch:
         """Encode one batch; the batch and its frame are left untouched.
@@ -199,14 +271,22 @@ class Encoder:
             report(bad, schema.time_field, _REASON_TIME, raw_time)
 
         keep = ~bad_rows
+        if schema.task == "classification":
+            y_codes = self._classes.encode(target_codes, target_labels, keep)
+            beyond = keep & (y_codes >= self._classes.cap)
+            if scoring:       # a label the model cannot know is as good as none
+                y_codes = np.where(beyond, -1, y_codes)
+            else:
+                report(beyond, target,
+                       f"{BEYOND_CLASS_CAP} ({self._classes.cap:,}; --class-cap)", raw_target)
+            keep = ~bad_rows
+            y = y_codes[keep].astype(np.int32)
+        else:
+            y = y_values[keep]
         for j, name, codes, labels in pending:
             mapped = self._books[name].encode(codes, labels, keep).astype(np.float64)
             mapped[mapped < 0] = np.nan
             X[:, j] = mapped
-        if schema.task == "classification":
-            y = self._classes.encode(target_codes, target_labels, keep)[keep].astype(np.int32)
-        else:
-            y = y_values[keep]
 
         ids = None
         if schema.id_field is not None:
@@ -249,8 +329,12 @@ class Encoder:
             "format": _STATE_FORMAT,
             "version": _STATE_VERSION,
             "task": self.schema.task,
-            "categories": self.categories,
+            "categories": {name: list(book.labels) for name, book in self._books.items()},
             "classes": self.classes,
+            "category_cap": self.category_cap,
+            "class_cap": self.class_cap,
+            "pooled": {name: [book.pooled, book.first_pooled, book.reached_at]
+                       for name, book in self._books.items() if book.first_pooled is not None},
             "unknown_fields": dict(self.unknown_fields),
         }
 
@@ -266,14 +350,35 @@ class Encoder:
             raise fail(f"version {state.get('version')!r}, expected {_STATE_VERSION}")
         if state.get("task") != schema.task:
             raise fail(f"task {state.get('task')!r}, the schema's is {schema.task!r}")
-        encoder = cls(schema)
+        # states saved before the caps existed kept every value apart
+        category_cap = state.get("category_cap", CATEGORY_LIMIT)
+        class_cap = state.get("class_cap", CATEGORY_LIMIT)
+        try:
+            encoder = cls(schema, category_cap, class_cap)
+        except ConfigError as exc:
+            raise fail(str(exc)) from None
         categories = state.get("categories")
         if not isinstance(categories, dict) or set(categories) != set(encoder._books):
             expected = ", ".join(sorted(encoder._books)) or "none"
             raise fail(f"category fields differ (expected {expected})")
+        pooled = state.get("pooled", {})
+        if not isinstance(pooled, dict) or not set(pooled) <= set(encoder._books):
+            raise fail("pooled names fields that are not category fields")
         for name, labels in categories.items():
-            encoder._books[name] = _Codebook(_label_list(labels, fail, f"field {name!r}"))
-        encoder._classes = _Codebook(_label_list(state.get("classes"), fail, "classes"))
+            facts = pooled.get(name, [0, None, 0])
+            if not (isinstance(facts, list) and len(facts) == 3
+                    and all(isinstance(v, int) and v >= 0 for v in facts[::2])
+                    and (facts[1] is None or isinstance(facts[1], str))):
+                raise fail(f"pooled values of field {name!r} are not a count, a label "
+                           "and a count")
+            labels = _label_list(labels, fail, f"field {name!r}")
+            if len(labels) > category_cap:
+                raise fail(f"field {name!r} lists more values than its cap")
+            encoder._books[name] = _Codebook(labels, category_cap, *facts)
+        classes = _label_list(state.get("classes"), fail, "classes")
+        if len(classes) > class_cap:
+            raise fail("more classes than the class cap")
+        encoder._classes = _Codebook(classes, class_cap)
         unknown = state.get("unknown_fields", {})
         if not isinstance(unknown, dict):
             raise fail("unknown_fields is not an object")

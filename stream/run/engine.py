@@ -39,8 +39,9 @@ from stream.errors import (ConfigError, InputError, OutputError, RecordError, Sa
                            SchemaError)
 
 from .atomic import write_atomic
-from .encoding import NOT_A_NUMBER, EncodedBatch, Encoder
+from .encoding import EncodedBatch, Encoder
 from .job import LearnJob
+from .notices import FieldNotices
 from .outputs import RunOutputs, json_default
 from .reading import held_enough, infer_run_schema, open_run_source
 from .resume import RunCheckpoint
@@ -78,7 +79,7 @@ class LearnRun:
         self.position: dict | None = None
         self.records = 0            # records read: learned, waiting or quarantined
         self.records_seen = 0       # ``records`` when the last batch was accounted for
-        self.text_in_numbers: dict[str, int] = {}   # field -> values refused as text
+        self.notices = FieldNotices(self.warn)
         self.last_time: float | None = None
         self.prior_seconds = 0.0
         self.resumes = 0
@@ -104,7 +105,7 @@ class LearnRun:
     def _start(self, schema: Schema) -> None:
         job = self.job
         self.schema = schema
-        self.encoder = Encoder(schema)
+        self.encoder = Encoder(schema, job.category_cap, job.class_cap)
         settings = job.learner_settings(schema.task)
         self.task = TASKS[schema.task].create(schema, settings, job.window, job.fading,
                                               job.metrics_every)
@@ -291,27 +292,11 @@ class LearnRun:
             raise RecordError(first.message() + " (strict mode stops here)")
         quarantine = self.outputs.quarantine
         before = quarantine.count
-        self._note_text_in_numbers(batch.rejects)
+        self.notices.note(batch.rejects, self.encoder)
         quarantine.write(sorted(batch.rejects, key=lambda r: (r.line, r.field or "")))
         if count:
             self.records += len(batch) + quarantine.count - before
         return batch
-
-    def _note_text_in_numbers(self, rejects) -> None:
-        """Count values of numeric fields that are not numbers, and say it the first time
-        per field: a column inferred numeric (e.g. empty in the first records) that
-        later carries text would otherwise quarantine record after record quietly."""
-        for reject in rejects:
-            if reject.reason != NOT_A_NUMBER or reject.field is None:
-                continue
-            seen = self.text_in_numbers.get(reject.field, 0)
-            self.text_in_numbers[reject.field] = seen + 1
-            if not seen:
-                self.warn(f"{reject.origin} line {reject.line}: field {reject.field!r} holds "
-                          f"{reject.value!r}, but the field is numeric; records like it go "
-                          f"to the quarantine (count in the summary, 'text_in_numbers'). "
-                          f"If the field holds labels, declare it: --kind "
-                          f"{reject.field}=category")
 
     def emit_predictions(self, batch: EncodedBatch, part: slice, scored) -> None:
         """Write the predictions of ``batch[part]`` (delayed labels: at arrival)."""

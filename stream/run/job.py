@@ -10,10 +10,12 @@ import dataclasses
 import math
 from typing import Any
 
-from stream.checks import require_float, require_int
+from stream.checks import CATEGORY_LIMIT, require_float, require_int
 from stream.classify.settings import TreeSettings
 from stream.errors import ConfigError
 from stream.regress.settings import RegressionSettings
+
+from .encoding import DEFAULT_CATEGORY_CAP, DEFAULT_CLASS_CAP
 
 DEFAULT_QUARANTINE = "sapwood-quarantine.jsonl"
 DEFAULT_CHECKPOINT_EVERY = 100_000
@@ -43,6 +45,10 @@ class LearnJob:
     and time rows), joined within ``label_window`` records and, if set,
     ``label_seconds`` of data time; ``id_field`` declares the id field (see
     :mod:`stream.run.delayed_labels`).
+
+    Memory: ``category_cap`` distinct values of each category field are kept apart,
+    later new values share one code; ``class_cap`` classes at most, a record with one
+    more goes to the quarantine (see :class:`stream.run.encoding.Encoder`).
     """
 
     sources: list[str]
@@ -69,6 +75,8 @@ class LearnJob:
     window: int = 1000
     fading: float = 0.999
     batch_rows: int = 65536
+    category_cap: int = DEFAULT_CATEGORY_CAP
+    class_cap: int = DEFAULT_CLASS_CAP
     checkpoint_path: str | None = None
     checkpoint_every: int = DEFAULT_CHECKPOINT_EVERY
     checkpoint_seconds: float = DEFAULT_CHECKPOINT_SECONDS
@@ -92,6 +100,10 @@ class LearnJob:
             raise ConfigError("an idle exit needs follow mode (--follow): a run over files "
                               "ends at their end anyway")
         require_int("batch rows", self.batch_rows, 1)
+        for what, cap, least in (("category cap", self.category_cap, 1),
+                                 ("class cap", self.class_cap, 2)):
+            if require_int(what, cap, least) > CATEGORY_LIMIT:
+                raise ConfigError(f"{what} must be at most {CATEGORY_LIMIT:,}, got {cap!r}")
         require_int("label window", self.label_window, 1)
         require_float("label window in seconds", self.label_seconds, 0.0, math.inf,
                       low_open=False)

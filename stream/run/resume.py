@@ -21,6 +21,7 @@ from .checkpoint import (Checkpoint, check_fingerprint, iso_now, job_fingerprint
                          task_state, write_checkpoint)
 from .encoding import Encoder
 from .job import LearnJob
+from .notices import FieldNotices
 from .schema import Schema
 
 
@@ -43,7 +44,7 @@ class CheckpointedRun(Protocol):
     prior_seconds: float
     resumes: int
     resumed_at: int | None
-    text_in_numbers: dict[str, int]
+    notices: FieldNotices
 
 
 class RunCheckpoint:
@@ -51,6 +52,7 @@ class RunCheckpoint:
 
     def __init__(self, job: LearnJob, warn: Callable[[str], None]) -> None:
         self.job = job
+        self.warn = warn
         self.path = job.checkpoint_path
         folder = os.path.dirname(os.path.abspath(self.path))
         if not os.path.isdir(folder):
@@ -132,7 +134,8 @@ class RunCheckpoint:
             "recent_events": outputs["recent_events"],
             "seconds": run.prior_seconds + (run.clock() - run.started),
             "resumes": run.resumes, "checkpoints": self.written + 1,
-            "text_in_numbers": dict(run.text_in_numbers),
+            "text_in_numbers": dict(run.notices.text_in_numbers),
+            "beyond_class_cap": run.notices.beyond_class_cap,
         }
 
     def restore(self, run: CheckpointedRun) -> None:
@@ -162,7 +165,12 @@ class RunCheckpoint:
         if not isinstance(counts, dict):
             raise ModelFileError(f"{checkpoint.path!r}: its 'text_in_numbers' is not an "
                                  "object")
-        run.text_in_numbers = {str(k): int(v) for k, v in counts.items()}
+        run.notices.restored(encoder, {str(k): int(v) for k, v in counts.items()})
+        run.notices.beyond_class_cap = int(state.get("beyond_class_cap", 0))
+        if (encoder.category_cap, encoder.class_cap) != (self.job.category_cap,
+                                                         self.job.class_cap):
+            self.warn(f"the checkpoint keeps its category cap {encoder.category_cap:,} and "
+                      f"class cap {encoder.class_cap:,}: codes given out stay as they are")
         run.resumed_at = run.records
         self.written = 0
         if run.outputs.snapshots is not None:

@@ -70,7 +70,9 @@ def run_summary(run: Any) -> dict:
         "tree": tree_facts(m) if m else None,
         "schema": run.schema.to_dict() if run.schema else None,
         "unknown_fields": dict(run.encoder.unknown_fields) if run.encoder else {},
-        "text_in_numbers": dict(run.text_in_numbers),
+        "text_in_numbers": dict(run.notices.text_in_numbers),
+        "pooled_values": run.encoder.pooled if run.encoder else {},
+        "beyond_class_cap": run.notices.beyond_class_cap,
         "sources": [redacted(spec) for spec in job.sources],
         "stopped": run.stopped,
         "checkpoint": None if checkpoint is None else {
