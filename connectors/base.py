@@ -58,6 +58,10 @@ class RawBatch:
     position
         Where the source stands just after this batch (JSON-able, source-specific), for
         checkpoints; None for sources that cannot resume.
+    keyed
+        The records name their fields (JSON, broker fields): a column exists in
+        ``frame`` because some record of the batch has that key, so which columns a
+        frame has depends on the batch. A header-led format (CSV) has them all.
     """
 
     frame: pd.DataFrame
@@ -65,6 +69,7 @@ class RawBatch:
     lines: np.ndarray
     rejects: list[Reject] = dataclasses.field(default_factory=list)
     position: dict | None = None
+    keyed: bool = False
 
     def __len__(self) -> int:
         return len(self.frame)

@@ -117,7 +117,8 @@ class JsonLinesReader:
             frame, numbers, rejects = self._decode(lines, first)
             if len(frame) or rejects:
                 yield RawBatch(frame, self.name, numbers, rejects,
-                               {"offset": src.offset, "line": src.line, "mark": mark.hex()})
+                               {"offset": src.offset, "line": src.line, "mark": mark.hex()},
+                               keyed=True)
 
     def _decode(self, lines: list[bytes], first: int):
         stripped = [line.strip() for line in lines]

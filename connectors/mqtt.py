@@ -481,7 +481,8 @@ class MqttSource:
             frame[self._topic_field] = [topics[i] for i in (parsed.lines - first).tolist()]
         same = n and topics.count(topics[0]) == n
         origin = topics[0] if same else ",".join(self._filters)
-        return RawBatch(frame, origin, parsed.lines, parsed.rejects, self._position(self._seq))
+        return RawBatch(frame, origin, parsed.lines, parsed.rejects, self._position(self._seq),
+                        keyed=self._format == "json")
 
     def close(self) -> None:
         """Deliver the PUBACKs committed so far, then disconnect; safe to call twice."""

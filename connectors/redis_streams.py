@@ -434,7 +434,8 @@ class RedisStreamSource:
                                      for i in (parsed.lines - first).tolist()]
         if rejects:
             parsed.rejects = sorted(rejects + parsed.rejects, key=lambda r: r.line)
-        return RawBatch(frame, self._stream, parsed.lines, parsed.rejects, self._position())
+        return RawBatch(frame, self._stream, parsed.lines, parsed.rejects, self._position(),
+                        keyed=self._format != "csv")
 
     def _parse(self, flats: list, lines: np.ndarray, tags: _Tags) -> Parsed:
         if self._format == "fields":

@@ -16,6 +16,7 @@ from stream.errors import ConfigError
 
 from .job import INFER_ROWS, LearnJob
 from .schema import Schema, infer_schema
+from .values import missing_mask
 
 
 def batch_rows_for(job: LearnJob) -> int:
@@ -54,9 +55,24 @@ def infer_run_schema(pending: Sequence[RawBatch], job: LearnJob,
     if not frames:     # nothing but rejects so far: infer from what there is
         frames = [pending[0].frame]
     prefix = pd.concat(frames, ignore_index=True).iloc[:INFER_ROWS]
+    if any(b.keyed for b in pending):
+        prefix = _keys_of_prefix(prefix, job)
     if labels_later and job.target not in prefix.columns:
         if job.task is None:
             raise ConfigError(f"the records carry no {job.target!r} (their labels "
                               f"come from --labels): give --task or --schema")
         prefix = prefix.assign(**{job.target: np.nan})
     return infer_schema(prefix, job.target, job.task, job.declared)
+
+
+def _keys_of_prefix(prefix: pd.DataFrame, job: LearnJob) -> pd.DataFrame:
+    """Records that name their fields: the schema holds the keys with a value in the
+    first ``INFER_ROWS`` records, and the declared ones. A batch holding later records
+    too has columns for keys only those carry; without this, a key first seen after the
+    inference rows would join the schema or not depending on the batch size."""
+    wanted = set(job.declared) | {job.target}
+    empty = [c for c in prefix.columns
+             if str(c) not in wanted and not (~missing_mask(prefix[c])).any()]
+    prefix = prefix.drop(columns=empty)
+    absent = [name for name in job.declared if name not in prefix.columns]
+    return prefix.assign(**{name: np.nan for name in absent}) if absent else prefix

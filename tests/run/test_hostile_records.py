@@ -164,3 +164,44 @@ def test_text_in_a_field_inferred_numeric_is_said_once_and_counted(tmp_path):
     assert summary["text_in_numbers"] == {"code": 1_500}
     assert len(warnings) == 1 and "line 10502: field 'code' holds 'A0'" in warnings[0]
     assert "--kind code=category" in warnings[0]
+
+
+def agrawal_jsonl(path: Path, n: int, late_row: int) -> Path:
+    """river's Agrawal records (Agrawal, Imielinski & Swami 1993) as JSON Lines; the
+    record at ``late_row`` carries one key no earlier record has."""
+    lines = []
+    for i, (x, y) in enumerate(synth.Agrawal(classification_function=1, seed=9).take(n)):
+        record = {**{k: float(v) for k, v in x.items()}, "y": "A" if y else "B"}
+        if i == late_row:
+            record["note"] = "checked"
+        lines.append(json.dumps(record))
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def test_a_key_first_seen_after_inference_is_handled_alike_whatever_the_batch(tmp_path):
+    path = agrawal_jsonl(tmp_path / "a.jsonl", 11_000, 10_500)
+    results = []
+    for rows in (65_536, 1_000, 333):
+        warnings: list[str] = []
+        predictions = tmp_path / f"p{rows}.csv"
+        summary = LearnRun(LearnJob(sources=[str(path)], target="y", batch_rows=rows,
+                                    quarantine_path=str(tmp_path / f"q{rows}.jsonl"),
+                                    predictions_path=str(predictions)),
+                           warn=warnings.append).run()
+        assert summary["learned"] == 11_000 and summary["quarantined"] == 0
+        assert summary["unknown_fields"] == {"note": 1}
+        said = [w for w in warnings if "not in the schema" in w]
+        assert len(said) == 1 and "--kind note=KIND" in said[0]
+        results.append((summary["accuracy"], summary["schema"], predictions.read_text()))
+    assert results[0] == results[1] == results[2]
+
+
+def test_a_declared_key_absent_from_the_first_records_is_learned(tmp_path):
+    path = agrawal_jsonl(tmp_path / "a.jsonl", 11_000, 10_500)
+    for rows in (65_536, 1_000):
+        summary = run_learn(LearnJob(sources=[str(path)], target="y", batch_rows=rows,
+                                     declared={"note": "category"},
+                                     quarantine_path=str(tmp_path / "q.jsonl")))
+        assert {"name": "note", "kind": "category"} in summary["schema"]["fields"]
+        assert summary["unknown_fields"] == {} and summary["learned"] == 11_000
