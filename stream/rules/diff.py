@@ -34,9 +34,12 @@ from __future__ import annotations
 import dataclasses
 from typing import Sequence
 
-from .regions import Span, overlaps, region_of, shape_of, within
+from .bulk import in_bulk
+from .overlap import meeting_lists
+from .regions import Span, region_of, shape_of, within
 from .rule import Rule
 from .text import format_number, rule_conditions_text
+
 
 def _scales(*rule_sets: Sequence[Rule]) -> dict[str, float]:
     values: dict[str, list[float]] = {}
@@ -148,6 +151,7 @@ def _shift(old: float, new: float, digits: int = 6) -> dict:
             "by": round(float(new) - float(old), digits)}
 
 
+@in_bulk
 def diff_rules(old: Sequence[Rule], new: Sequence[Rule], old_header: dict | None = None,
                new_header: dict | None = None) -> RuleDiff:
     """Compare two rule sets (see the module notes for how rules are matched).
@@ -182,24 +186,25 @@ def diff_rules(old: Sequence[Rule], new: Sequence[Rule], old_header: dict | None
     taken = set(pairs.values())
     # Records with every value present decide what was carved from what: where missing
     # values go follows the heavier branch and changes without any split.
-    meets = [[j for j in range(len(new)) if overlaps(a, regions_new[j], False)]
-             for a in regions_old]
-    met_by = [[i for i in range(len(old)) if j in meets[i]] for j in range(len(new))]
+    meets = meeting_lists(regions_old, regions_new)
+    met_by: list[list[int]] = [[] for _ in new]
+    for i, js in enumerate(meets):
+        for j in js:
+            met_by[j].append(i)
     split = {i for i, js in enumerate(meets) if i not in pairs and len(js) > 1
              and all(within(regions_new[j], regions_old[i], False) for j in js)}
     absorbed = {j for j, is_ in enumerate(met_by) if j not in taken and len(is_) > 1
                 and all(within(regions_old[i], regions_new[j], False) for i in is_)}
     scales = _scales(old, new)
-    by_shape: dict[tuple, list[int]] = {}
-    for j, region in enumerate(regions_new):
-        if j not in taken and j not in absorbed:
-            by_shape.setdefault(shape_of(region), []).append(j)
+    shapes = {j: shape_of(region) for j, region in enumerate(regions_new)
+              if j not in taken and j not in absorbed}
     candidates = []
     for i, region in enumerate(regions_old):
         if i in pairs or i in split:
             continue
-        for j in by_shape.get(shape_of(region), []):
-            if j in meets[i]:
+        shape = shape_of(region)
+        for j in meets[i]:
+            if shapes.get(j) == shape:
                 candidates.append((_distance(region, regions_new[j], scales),
                                    old[i].id != new[j].id, i, j))
     candidates.sort()

@@ -125,3 +125,4 @@ def within(inner: dict[str, Span], outer: dict[str, Span], missing: bool = True)
     values go follows the heavier branch and can change without any split.
     """
     return all(f in inner and _span_within(inner[f], outer[f], missing) for f in outer)
+

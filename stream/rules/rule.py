@@ -18,6 +18,8 @@ from typing import Sequence
 
 from stream.tree.paths import Condition
 
+from .bulk import in_bulk
+
 
 @dataclasses.dataclass(frozen=True)
 class Rule:
@@ -90,6 +92,7 @@ def rules_payload(rules: Sequence[Rule], header: dict) -> dict:
     return {**header, "rule_count": len(rules), "rules": [r.to_dict() for r in rules]}
 
 
+@in_bulk
 def rules_from_payload(payload: dict) -> list[Rule]:
     """Rules back from :func:`rules_payload` output (e.g. a snapshot file)."""
     return [Rule.from_dict(r) for r in payload.get("rules", [])]

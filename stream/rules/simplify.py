@@ -19,10 +19,12 @@ the rules it joins ("R12+R15").
 from __future__ import annotations
 
 import dataclasses
+import math
 from typing import Sequence
 
 from stream.tree.paths import Condition
 
+from .bulk import in_bulk
 from .regions import Span, region_of
 from .rule import Rule, sort_rules
 
@@ -66,16 +68,56 @@ def tidy(rule: Rule) -> Rule:
     sources (hand-edited JSON, another tool). The ``branch`` display hint of a
     ``not in`` condition is kept when the condition is unchanged.
     """
+    return _tidied(rule)[0]
+
+
+def _tidied(rule: Rule) -> tuple[Rule, dict[str, Span]]:
+    """:func:`tidy` and the tidied rule's region."""
     region = region_of(rule.conditions)
+    if _already_tidy(rule.conditions, region):
+        return rule, region
     order = [f for f in _order(rule) if not _always_true(region[f])]
-    return dataclasses.replace(rule, conditions=_hinted(_conditions(region, order),
-                                                         rule.conditions))
+    tidied = dataclasses.replace(rule, conditions=_hinted(_conditions(region, order),
+                                                           rule.conditions))
+    return tidied, {f: region[f] for f in order}
+
+
+def _already_tidy(conditions: Sequence[Condition], region: dict[str, Span]) -> bool:
+    """Whether :func:`tidy` would give ``conditions`` back unchanged: one run of
+    conditions per feature, a numeric one as ``>`` then ``<=``, a category one as a
+    single test of sorted labels, one missing flag per feature, none always true (rules
+    read off a tree are like this)."""
+    done: set[str] = set()
+    k = 0
+    while k < len(conditions):
+        c = conditions[k]
+        if c.feature in done or _always_true(region[c.feature]):
+            return False
+        done.add(c.feature)
+        if c.op in ("in", "not in"):
+            if c.value != tuple(sorted(c.value)):
+                return False
+            k += 1
+        elif type(c.value) is not float:
+            return False     # tidy writes bounds as floats
+        elif c.op == ">" and k + 1 < len(conditions) and conditions[k + 1].feature == c.feature:
+            after = conditions[k + 1]
+            if after.op != "<=" or after.missing != c.missing or type(after.value) is not float:
+                return False
+            k += 2
+        else:
+            k += 1
+        if k < len(conditions) and conditions[k].feature == c.feature:
+            return False
+    return True
 
 
 def _hinted(conditions: tuple[Condition, ...],
             before: Sequence[Condition]) -> tuple[Condition, ...]:
     """Keep the ``branch`` display hint of conditions that did not change."""
     hints = {(c.feature, c.op, c.value, c.missing): c.branch for c in before if c.branch}
+    if not hints and not any(c.branch for c in conditions):
+        return tuple(conditions)
     return tuple(dataclasses.replace(c, branch=hints.get(
         (c.feature, c.op, c.value, c.missing), ())) for c in conditions)
 
@@ -124,10 +166,12 @@ def _combine(a: Rule, b: Rule, region: dict[str, Span], order: list[str]) -> Rul
         active=a.active or b.active)
 
 
-def _try_join(a: Rule, b: Rule) -> Rule | None:
+def _try_join(a: Rule, b: Rule, ra: dict[str, Span],
+              rb: dict[str, Span]) -> tuple[Rule, dict[str, Span]] | None:
+    """The rule covering exactly ``a`` or ``b`` (regions ``ra``, ``rb``) and its region,
+    or None if no rule can."""
     if a.predict is None or a.predict != b.predict:
         return None
-    ra, rb = region_of(a.conditions), region_of(b.conditions)
     if ra.keys() != rb.keys():
         return None
     differing = [f for f in ra if ra[f] != rb[f]]
@@ -144,7 +188,7 @@ def _try_join(a: Rule, b: Rule) -> Rule | None:
         order.remove(feature)
     else:
         region[feature] = joined
-    return _combine(a, b, region, order)
+    return _combine(a, b, region, order), region
 
 
 @dataclasses.dataclass(frozen=True)
@@ -156,6 +200,7 @@ class Simplified:
     sources: tuple[str, ...]
 
 
+@in_bulk
 def simplify(rules: Sequence[Rule]) -> list[Simplified]:
     """Tidy each rule, join pairs that differ on one feature and predict the same class
     (until no pair joins), and sort by class, then coverage (largest first).
@@ -173,33 +218,139 @@ def _id_order(rule_id: str) -> tuple:
     return (0, int(digits), rule_id) if digits.isdigit() else (1, 0, rule_id)
 
 
+class _Keys:
+    """Bucket keys of rules, as small integers: a rule's key per feature is (its class,
+    the feature, its region on every other feature). Computed once per rule."""
+
+    def __init__(self) -> None:
+        self._ids: dict[tuple, int] = {}
+        self._spans: dict[tuple, int] = {}
+
+    def of(self, rule: Rule, region: dict[str, Span]) -> list[int]:
+        spans = self._spans
+        features = sorted(region)
+        ids = []
+        for f in features:
+            span = region[f]     # a plain tuple hashes faster than the dataclass
+            ids.append(spans.setdefault((f, span.kind, span.lo, span.hi, span.op,
+                                         span.labels, span.missing), len(spans)))
+        place = {f: i for i, f in enumerate(features)}
+        keys = []
+        for feature in region:   # the rule's own order: buckets come in first-seen order
+            i = place[feature]
+            rest = tuple(ids[:i] + ids[i + 1:])
+            keys.append(self._ids.setdefault((rule.predict, feature, rest), len(self._ids)))
+        return keys
+
+
 def _join_all(rules: Sequence[Rule]) -> list[Rule]:
-    current = [tidy(r) for r in rules]
-    joined = True
-    while joined:
-        joined = False
-        buckets: dict[tuple, list[int]] = {}
-        for k, rule in enumerate(current):
-            region = region_of(rule.conditions)
-            for feature in region:
-                rest = tuple(sorted((f, s) for f, s in region.items() if f != feature))
-                buckets.setdefault((rule.predict, feature, rest), []).append(k)
+    """Join pairs until none joins.
+
+    Each pass: rules sharing a bucket key differ on one feature at most; in bucket
+    order, each free rule joins the first later free rule it can. The rules of a pass
+    are in the order: those joined in the last pass (as they were made), then the others
+    in their order before, i.e. by (pass made, newest first; made earlier first); a
+    bucket comes where its first rule is. Two rules that stayed apart through a pass
+    cannot join later, so a pass looks only at the buckets of the rules joined in the
+    last one. For numeric spans of a partition only touching intervals join, so those
+    are looked up by their bounds instead of trying every later rule.
+    """
+    keys = _Keys()
+    live: dict[int, tuple[Rule, dict[str, Span], list[int], int]] = {}
+    members_of: dict[int, list[int]] = {}      # bucket key -> serials (some since joined)
+
+    def add(rule: Rule, region: dict[str, Span], made: int) -> int:
+        serial = len(order_of)
+        own = keys.of(rule, region)
+        live[serial] = (rule, region, own, made)
+        order_of.append((-made, serial))
+        for key in own:
+            members_of.setdefault(key, []).append(serial)
+        return serial
+
+    order_of: list[tuple[int, int]] = []
+    fresh = [add(rule, region, 0) for rule, region in map(_tidied, rules)]
+    made = 0
+    while fresh:
+        made += 1
+        wanted = {key for serial in fresh for key in live[serial][2]}
+        buckets = []
+        for key in wanted:
+            members = sorted((s for s in members_of[key] if s in live), key=order_of.__getitem__)
+            members_of[key] = members
+            if len(members) > 1:
+                first = members[0]
+                buckets.append(((order_of[first], live[first][2].index(key)), members))
+        buckets.sort(key=lambda item: item[0])
         used: set[int] = set()
-        result: list[Rule] = []
-        for members in buckets.values():
-            free = [k for k in members if k not in used]
-            for x in range(len(free)):
-                if free[x] in used:
-                    continue
-                for y in range(x + 1, len(free)):
-                    if free[y] in used:
-                        continue
-                    merged = _try_join(current[free[x]], current[free[y]])
-                    if merged is not None:
-                        used.update((free[x], free[y]))
-                        result.append(merged)
-                        joined = True
-                        break
-        result.extend(r for k, r in enumerate(current) if k not in used)
-        current = result
-    return sort_rules(current)
+        joined: list[tuple[Rule, dict[str, Span]]] = []
+        current = {s: live[s][0] for _, members in buckets for s in members}
+        regions = {s: live[s][1] for s in current}
+        for _, members in buckets:
+            free = [s for s in members if s not in used]
+            if len(free) < 2:
+                continue
+            for x, y in _pairs(free, regions, used):
+                found = _try_join(current[x], current[y], regions[x], regions[y])
+                if found is not None:
+                    used.update((x, y))
+                    joined.append(found)
+        for serial in used:
+            del live[serial]
+        fresh = [add(rule, region, made) for rule, region in joined]
+    return sort_rules([live[s][0] for s in sorted(live, key=order_of.__getitem__)])
+
+
+def _pairs(free: list[int], regions: dict[int, dict], used: set[int]):
+    """The pairs to try in one bucket, in the order of the plain scan (each free rule
+    with every later free one), skipping pairs that cannot join: numeric intervals of one
+    feature that neither touch nor overlap. ``used`` is read as pairs are taken."""
+    feature = _differing_numeric(free, regions)
+    if feature is None:
+        for i, x in enumerate(free):
+            for y in free[i + 1:]:
+                if x not in used and y not in used:
+                    yield x, y
+        return
+    spans = {k: regions[k][feature] for k in free}
+    by_lo: dict[float, list[int]] = {}
+    by_hi: dict[float, list[int]] = {}
+    for k in free:
+        if spans[k].lo is not None:
+            by_lo.setdefault(spans[k].lo, []).append(k)
+        if spans[k].hi is not None:
+            by_hi.setdefault(spans[k].hi, []).append(k)
+    position = {k: i for i, k in enumerate(free)}
+    for x in free:
+        if x in used:
+            continue
+        span = spans[x]
+        touching = [*by_lo.get(span.hi, ()), *by_hi.get(span.lo, ())]
+        later = sorted((position[y], y) for y in touching
+                       if position[y] > position[x] and y not in used)
+        for _, y in later:
+            if x in used:
+                break
+            yield x, y
+
+
+def _differing_numeric(free: list[int], regions: dict[int, dict]) -> str | None:
+    """The one feature on which a bucket's numeric spans differ, if the bucket's spans
+    on it are disjoint intervals (a partition); None when the plain scan is needed."""
+    first = regions[free[0]]
+    features = [f for f in first if f in regions[free[1]]
+                and regions[free[1]][f] != first[f]]
+    if len(features) != 1 or first[features[0]].kind != "num":
+        return None
+    feature = features[0]
+    spans = []
+    for k in free:
+        span = regions[k].get(feature)
+        if span is None or span.kind != "num" or regions[k].keys() != first.keys():
+            return None
+        spans.append((-math.inf if span.lo is None else span.lo,
+                      math.inf if span.hi is None else span.hi))
+    spans.sort()
+    if any(spans[i][1] > spans[i + 1][0] for i in range(len(spans) - 1)):
+        return None   # overlapping intervals: not a partition, try every pair
+    return feature

@@ -27,15 +27,18 @@ from stream.errors import InputError
 from stream.rules.diff import RuleDiff, diff_rules, fate_note, origin_note
 from stream.rules.rule import Rule, rules_from_payload
 from stream.rules.simplify import simplify
-from stream.rules.text import (CAUTION_IN_FULL, drift_words, format_number,
-                               rule_conditions_text)
+from stream.rules.text import (
+    CAUTION_IN_FULL,
+    drift_words,
+    format_number,
+    rule_conditions_text,
+)
 from stream.run.atomic import write_atomic
 from stream.run.snapshots import SnapshotStore
 
 from .rule_sources import header_of
 from .run_logs import event_path_text, read_events, read_metrics
 from .svg_plot import PALETTE, Marker, Series, bar_chart, line_chart
-
 
 CHURN_COLORS = {"new": "#2a8a4a", "gone": "#b8323a", "changed": "#d9731a"}
 MAX_CHURN_SNAPSHOTS = 200
@@ -82,18 +85,27 @@ def load_report_data(snapshot_dir: str, metrics_path: str | None = None,
     return ReportData(snapshots, metrics, events, sources, sampled)
 
 
-def churn_table(snapshots: Sequence[dict]) -> list[dict]:
+def churn_table(snapshots: Sequence[dict], kept: dict | None = None) -> list[dict]:
     """Per snapshot after the first: sequence, records, and the counts of
-    :meth:`stream.rules.diff.RuleDiff.churn` against the snapshot before it."""
+    :meth:`stream.rules.diff.RuleDiff.churn` against the snapshot before it.
+
+    ``kept`` (if given) receives the rules of the first and last snapshots and the last
+    diff (``first``, ``last``, ``last_diff``), so a report reads and compares each
+    snapshot once."""
     rows = []
     previous = None
-    for document in snapshots:
+    diff = None
+    for k, document in enumerate(snapshots):
         rules = rules_from_payload(document)
         if previous is not None:
-            counts = diff_rules(previous, rules).churn()
+            diff = diff_rules(previous, rules)
             rows.append({"sequence": document["sequence"], "records": document["records"],
-                         **counts})
+                         **diff.churn()})
+        elif kept is not None:
+            kept["first"] = rules
         previous = rules
+    if kept is not None:
+        kept["last"], kept["last_diff"] = previous, diff
     return rows
 
 
@@ -290,8 +302,9 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
     last = rows[-1] if rows else {}
     markers = _markers(data.events)
     title = title or f"sapwood report: {target}"
-    churn = churn_table(data.snapshots)
-    rules = rules_from_payload(last_doc)
+    kept: dict = {}
+    churn = churn_table(data.snapshots, kept)
+    rules = kept.get("last") or rules_from_payload(last_doc)
     simple = simplify(rules)
 
     charts = []
@@ -373,8 +386,12 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
                                 {s.rule.id: s.sources for s in simple}))
         out.append("</details>")
     if len(data.snapshots) > 1:
-        diff = diff_rules(rules_from_payload(first), rules, header_of(first),
-                          header_of(last_doc))
+        if len(data.snapshots) == 2 and kept.get("last_diff") is not None:
+            diff = dataclasses.replace(kept["last_diff"], old_header=header_of(first),
+                                       new_header=header_of(last_doc))
+        else:
+            diff = diff_rules(kept.get("first") or rules_from_payload(first), rules,
+                              header_of(first), header_of(last_doc))
         out.append("<h2>From the first snapshot to the last</h2>")
         out.append(_diff_html(diff, target))
     out.append(f"<h2>Drift events ({len(data.events)})</h2>")
