@@ -17,10 +17,15 @@ end-to-end
     ``sapwood learn -`` on a 1M-row CSV on stdin against a bare ``pandas.read_csv`` of
     the same file, in the same run.
 memory
-    Peak memory of ``sapwood learn -`` reading 200k and 2M rows through a pipe.
+    Peak memory of ``sapwood learn -`` reading 200k and 2M rows through a pipe, and 200k
+    rows with a category holding a different value in every row.
 feeds
     Records/s from a file, a Redis stream and an MQTT topic, and the cost of a checkpoint
     every 10,000 records (:mod:`stream.bench.feeds`).
+rules
+    Seconds to join and to compare the rules of a bushy tree (about 80,000 rules from 1M
+    rows), and for ``sapwood notes`` and ``sapwood report`` on them
+    (:mod:`stream.bench.rules`).
 
 How memory is measured: Linux keeps a child's ``ru_maxrss`` across ``exec``, starting
 from the resident size of the process it was forked (or vforked) from, so ``wait4`` and
@@ -32,6 +37,7 @@ milliseconds could be missed. Linux only; 1 MB = 10^6 bytes.
 Modules: ``common`` (bench, results, registry), ``streams`` (the generated streams),
 ``learners`` (the learners, drift and regression suites, in memory), ``regression``
 (regression streams and river's regression trees), ``end_to_end`` (the end-to-end and
-memory suites, ``sapwood learn`` as a child process), ``feeds`` (live feeds),
+memory suites, ``sapwood learn`` as a child process), ``feeds`` (live feeds), ``rules``
+(the rule views),
 ``output`` (text, Markdown and JSON of the results), ``command`` (``sapwood bench``).
 """

@@ -32,6 +32,7 @@ _UNITS: dict[str, Callable[[float], str]] = {
     "pt": lambda v: f"{100 * v:.4f} pt",
     "%": lambda v: f"{100 * v:.3f}%",
     "MB": lambda v: f"{v:,.1f} MB",
+    "s": lambda v: f"{v:,.2f} s",
     "rmse": lambda v: f"{v:.4f}",
 }
 

@@ -115,11 +115,13 @@ def test_end_to_end_and_memory_suites_on_small_files(tmp_path):
         assert row["ratio"] == pytest.approx(row["sapwood_rps"] / row["pandas_rps"])
         assert row["sapwood_quarantined"] == 0
     assert [c.target for c in e2e.checks] == [0.5, 0.5]
-    assert [r["rows"] for r in memory.rows] == [2000, 6000]
-    assert [r["sapwood_records"] for r in memory.rows] == [2000, 6000]
-    small, large = (r["peak_mb"] for r in memory.rows)
-    assert small > 0 and large > 0
+    assert [r["rows"] for r in memory.rows] == [2000, 6000, 2000]
+    assert [r["sapwood_records"] for r in memory.rows] == [2000, 6000, 2000]
+    assert memory.rows[2]["stream"] == "SEA + 2,000-value tag"
+    small, large, tagged = (r["peak_mb"] for r in memory.rows)
+    assert small > 0 and large > 0 and tagged > 0
     assert memory.checks[1].value == pytest.approx(large / small)
+    assert memory.checks[3].value == pytest.approx(tagged / small)
     text = render_text([e2e, memory], output.environment())
     assert "read_csv rows/s" in text and "peak MB" in text and text.count("target ") >= 4
 
@@ -195,7 +197,7 @@ def test_markdown_table_has_one_line_per_row(monkeypatch, tmp_path):
 
 def test_suites_and_streams_are_registries(tmp_path):
     assert list(common.SUITES) == ["learners", "drift", "regression", "end-to-end", "memory",
-                                  "feeds"]
+                                  "feeds", "rules"]
     assert list(streams.STREAMS) == ["sea", "agrawal", "hyperplane", "rbf10", "rbf100", "led"]
     assert streams.STREAMS["rbf100"].min_ratio == 50 and streams.STREAMS["sea"].min_ratio == 100
     with pytest.raises(SapwoodError, match="suite must be one of"):
@@ -219,3 +221,15 @@ def test_river_prefix_per_stream_and_for_all(tmp_path):
     run = Bench(tmp_path, records=1000, river_records={"*": 400, "led": 900})
     assert [run.river_prefix(s) for s in ("sea", "led")] == [400, 900]
     assert Bench(tmp_path, records=300, river_records={"*": 400}).river_prefix("sea") == 300
+
+
+def test_rules_suite_times_the_views_of_a_bushy_tree(tmp_path):
+    run = Bench(tmp_path, csv_rows=20_000, repeats=1, say=lambda message: None)
+    (result,) = run_bench(run, ["rules"])
+    steps = [r["step"] for r in result.rows]
+    assert steps[1:] == ["compare the two snapshots", "sapwood notes (whole command)",
+                         "sapwood report (whole command)"]
+    assert result.rows[0]["rules"] > 100      # grace period 4 grows a bushy tree
+    assert all(r["seconds"] > 0 for r in result.rows)
+    assert [c.unit for c in result.checks] == ["s", "s"]
+    assert (tmp_path / "rules.html").exists()
