@@ -64,7 +64,6 @@ from stream.errors import ConfigError
 from .encoding import EncodedBatch
 
 
-
 class LabelledRun(Protocol):
     """What the delayed labels use of the run they serve (:class:`stream.run.engine.LearnRun`):
     its job and schema, its encoder and quarantine for label rows, and the learning of

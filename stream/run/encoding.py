@@ -24,10 +24,14 @@ from stream.checks import CATEGORY_LIMIT, VALUE_LIMIT, require_int
 from stream.errors import ConfigError, ModelFileError
 
 from .schema import Schema
-from .values import (as_array, factorize_labels, label_texts, missing_mask, parse_numbers,
-                     parse_times)
-
-
+from .values import (
+    as_array,
+    factorize_labels,
+    label_texts,
+    missing_mask,
+    parse_numbers,
+    parse_times,
+)
 
 _MAX_VALUE_CHARS = 200
 _STATE_FORMAT = "sapwood-encoder"

@@ -35,8 +35,14 @@ import numpy as np
 
 from connectors.base import RawBatch
 from connectors.follow import FollowControl, FollowStopped
-from stream.errors import (ConfigError, InputError, OutputError, RecordError, SapwoodError,
-                           SchemaError)
+from stream.errors import (
+    ConfigError,
+    InputError,
+    OutputError,
+    RecordError,
+    SapwoodError,
+    SchemaError,
+)
 
 from .atomic import write_atomic
 from .encoding import EncodedBatch, Encoder
@@ -46,7 +52,7 @@ from .outputs import RunOutputs, json_default
 from .reading import held_enough, infer_run_schema, open_run_source
 from .resume import RunCheckpoint
 from .saved_model import save_model
-from .schema import Schema, not_a_field, load_schema
+from .schema import Schema, load_schema, not_a_field
 from .summary import rules_header, run_summary, tree_facts
 from .tasks import TASKS, warm_up
 

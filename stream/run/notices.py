@@ -12,7 +12,6 @@ from __future__ import annotations
 from typing import Callable, Iterable
 
 from connectors.base import Reject
-
 from stream.shown import printable
 
 from .encoding import BEYOND_CLASS_CAP, NOT_A_NUMBER, OTHER_VALUES, Encoder

@@ -25,6 +25,7 @@ from stream.rules.rule import rules_payload
 from stream.rules.text import conditions_text, render_text
 from stream.tree.paths import node_conditions
 
+from .attempts import begin_attempt
 from .checkpoint import ResumableOutput, fsync_length, truncate_for_resume
 from .encoding import EncodedBatch
 from .job import DEFAULT_QUARANTINE, LearnJob
@@ -176,6 +177,8 @@ class RunOutputs:
             except OSError as exc:
                 raise ConfigError(f"cannot use snapshot directory {job.snapshot_dir!r}: "
                                   f"{exc.strerror or exc}") from exc
+            if job.checkpoint_path:
+                begin_attempt(job.snapshot_dir, job.checkpoint_path, fresh=resumed is None)
             self.snapshots = SnapshotStore(job.snapshot_dir, keep=job.snapshot_keep,
                                            history=job.snapshot_history)
         self.schedule = SnapshotSchedule(job.snapshot_every, job.snapshot_seconds,

@@ -16,9 +16,19 @@ from typing import Any, Callable, Protocol
 
 from stream.errors import ConfigError, ModelFileError
 
-from .checkpoint import (Checkpoint, check_fingerprint, iso_now, job_fingerprint,
-                         json_ready, read_checkpoint, restore_task, rollback_snapshots,
-                         task_state, write_checkpoint)
+from .attempts import note_checkpointed
+from .checkpoint import (
+    Checkpoint,
+    check_fingerprint,
+    iso_now,
+    job_fingerprint,
+    json_ready,
+    read_checkpoint,
+    restore_task,
+    rollback_snapshots,
+    task_state,
+    write_checkpoint,
+)
 from .encoding import Encoder
 from .job import LearnJob
 from .notices import FieldNotices
@@ -111,6 +121,8 @@ class RunCheckpoint:
             meta.update(labels_meta)
             arrays.update(label_arrays)
         size = write_checkpoint(self.path, meta, arrays)
+        if self.written == 0 and self.job.snapshot_dir:
+            note_checkpointed(self.job.snapshot_dir)
         self.written += 1
         self.last = {"records": run.records, "bytes": size,
                      "seconds": round(run.clock() - started, 6)}

@@ -25,8 +25,11 @@ from stream.classify.model import TreeClassifier
 from stream.classify.settings import CRITERIA, LEAF_MODELS, TreeSettings
 from stream.errors import ConfigError
 from stream.regress.model import TreeRegressor
-from stream.regress.settings import (REGRESSION_CRITERIA, REGRESSION_LEAF_MODELS,
-                                     RegressionSettings)
+from stream.regress.settings import (
+    REGRESSION_CRITERIA,
+    REGRESSION_LEAF_MODELS,
+    RegressionSettings,
+)
 from stream.rules.classify import extract_rules
 from stream.rules.regress import extract_regression_rules
 from stream.rules.rule import Rule, rule_id

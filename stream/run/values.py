@@ -23,7 +23,6 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-
 MISSING_MARKERS = frozenset({
     "", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND",
     "1.#QNAN", "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null",
