@@ -8,6 +8,7 @@ import os
 from typing import Sequence
 
 from stream.errors import ConfigError, InputError, ModelFileError
+from stream.rules.document import check_rules_document
 from stream.rules.rule import Rule, rules_from_payload
 from stream.run.model_file import MAGIC
 from stream.run.snapshots import SnapshotStore
@@ -48,7 +49,7 @@ def load_rules(path: str) -> tuple[dict, list[Rule]]:
                              f"{exc}") from exc
     if not isinstance(payload, dict) or "rules" not in payload:
         raise ModelFileError(f"{path!r} is JSON but not a sapwood snapshot (no 'rules')")
-    return _from_payload(payload)
+    return _from_payload(check_rules_document(payload, repr(path)))
 
 
 def _from_payload(payload: dict) -> tuple[dict, list[Rule]]:
