@@ -173,8 +173,18 @@ class Schema:
                    data["target"], data["task"])
 
 
+_NAMES_SHOWN = 30
+_NAME_CHARS = 40
+
+
 def not_a_field(what: str, name: str, names: list[str]) -> str:
-    return f"{what} {name!r} is not a field; fields are: {', '.join(names)}"
+    """'target 'y' is not a field; fields are: a, b, c': at most 30 names of at most
+    40 characters each (a binary file read as CSV has one endless "name")."""
+    shown = [n if len(n) <= _NAME_CHARS else n[:_NAME_CHARS - 3] + "..."
+             for n in names[:_NAMES_SHOWN]]
+    more = f" and {len(names) - _NAMES_SHOWN:,} more" if len(names) > _NAMES_SHOWN else ""
+    listed = ", ".join(shown) + more if names else "none"
+    return f"{what} {name!r} is not a field; fields are: {listed}"
 
 
 def load_schema(path: str) -> Schema:

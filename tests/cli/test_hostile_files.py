@@ -50,3 +50,24 @@ def test_a_truncated_gzip_keeps_what_was_learned_and_exits_2(tmp_path, capsys):
     facts = json.loads(summary.read_text())
     assert facts["stopped"] == "input error" and 0 < facts["learned"] < 300_000
     assert model.exists() and f"learned {facts['learned']:,} of" in err
+
+
+def test_random_bytes_read_as_csv_give_a_short_escaped_message(tmp_path, capsys):
+    import random
+    import re
+
+    data = tmp_path / "noise.csv"
+    data.write_bytes(random.Random(603).randbytes(3_000))
+    code, _, err = run_main(["learn", data, "--target", "y"], capsys)
+    assert code == 1 and "target 'y' is not a field; fields are: " in err
+    assert len(err) < 600                      # was 3,000 bytes of raw header
+    # ECMA-48: no C0 (but tab and newline) or C1 control reaches the terminal raw
+    assert not re.search(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]", err)
+
+
+def test_a_long_list_of_fields_is_cut():
+    from stream.run.schema import not_a_field
+
+    message = not_a_field("target", "y", [f"f{i}" for i in range(100)] + ["z" * 100])
+    assert message.endswith("f29 and 71 more")
+    assert "z" * 41 not in message
