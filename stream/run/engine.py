@@ -147,6 +147,7 @@ class LearnRun:
 
             self.delayed.open(batch_rows_for(job))
         self._pending: list[RawBatch] = []
+        self._first_unread = None     # the first reject read before any schema
         handlers = self._catch_signals() if job.checkpoint_path or job.follow else {}
         failures: list[str] = []
         unreadable: InputError | None = None
@@ -165,6 +166,11 @@ class LearnRun:
                     self.delayed.commit()   # nothing durable to wait for
             self.finished = self.clock()
             self._check_target_of_empty_input()
+            if self.task is None and self._first_unread is not None:
+                self.warn(f"no record could be learned: all {self.records:,} records read "
+                          f"went to the quarantine {self.outputs.quarantine.path!r} "
+                          f"(the first: {self._first_unread.message()}); no schema was "
+                          f"inferred and no model written")
             if self.stopped is None and self.outputs.snapshots is not None \
                     and self.task is not None \
                     and self.outputs.last_snapshot_records != self.task.records_learned:
@@ -230,10 +236,25 @@ class LearnRun:
     def _learn_pending(self) -> None:
         """Infer the schema from the batches held back, then learn them."""
         pending, self._pending = self._pending, []
+        if not any(len(b.frame) for b in pending) and any(b.rejects for b in pending):
+            self._quarantine_unread(pending)   # no record to infer from yet: wait for one
+            return
         self._start(infer_run_schema(pending, self.job, self.delayed is not None))
         for held in pending:
             self._consume(held)
             self._after_batch(held)
+
+    def _quarantine_unread(self, pending: list[RawBatch]) -> None:
+        """Records that could not be split into fields, read before any schema: they go
+        to the quarantine (or stop a strict run) and count as read."""
+        rejects = sorted((r for b in pending for r in b.rejects),
+                         key=lambda r: (r.line, r.field or ""))
+        if self.job.strict:
+            raise RecordError(rejects[0].message() + " (strict mode stops here)")
+        self.outputs.quarantine.write(rejects)
+        self.records += len(rejects)
+        if self._first_unread is None:
+            self._first_unread = rejects[0]
 
     def _on_idle(self) -> None:
         """A followed file has no new line for now (called from inside the source's

@@ -205,3 +205,27 @@ def test_a_declared_key_absent_from_the_first_records_is_learned(tmp_path):
                                      quarantine_path=str(tmp_path / "q.jsonl")))
         assert {"name": "note", "kind": "category"} in summary["schema"]["fields"]
         assert summary["unknown_fields"] == {} and summary["learned"] == 11_000
+
+
+def test_records_that_cannot_be_read_before_any_schema_are_quarantined(tmp_path):
+    # RFC 8259 allows nested values; a record field must hold one value
+    lines = ['{"y": {"a": 1}, "x": 1.0}', '{"y": "A", "x": [1]}']
+    path = tmp_path / "nested.jsonl"
+    path.write_text("\n".join(lines) + "\n")
+    quarantine = tmp_path / "q.jsonl"
+    warnings: list[str] = []
+    summary = LearnRun(LearnJob(sources=[str(path)], target="y", batch_rows=1,
+                                quarantine_path=str(quarantine),
+                                save_path=str(tmp_path / "m.sap")),
+                       warn=warnings.append).run()
+    assert (summary["records"], summary["learned"], summary["quarantined"]) == (2, 0, 2)
+    assert [json.loads(x)["line"] for x in quarantine.read_text().splitlines()] == [1, 2]
+    assert any("no record could be learned" in w and "line 1, field 'y'" in w
+               for w in warnings)
+    assert not (tmp_path / "m.sap").exists()
+    # readable records after them are learned, with the schema they give
+    path.write_text("\n".join(lines + ['{"y": "A", "x": 2.0}', '{"y": "B", "x": 3.0}']) + "\n")
+    quarantine.unlink()
+    summary = run_learn(LearnJob(sources=[str(path)], target="y", batch_rows=1,
+                                 quarantine_path=str(quarantine)))
+    assert (summary["records"], summary["learned"], summary["quarantined"]) == (4, 2, 2)
