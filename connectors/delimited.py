@@ -371,8 +371,10 @@ class DelimitedReader:
 
     def __init__(self, opener: Callable[[], BinaryIO], origin: str,
                  batch_rows: int = 65536, threads: int = PARSE_THREADS,
-                 resume: dict | None = None, known_columns: list[str] | None = None) -> None:
+                 resume: dict | None = None, known_columns: list[str] | None = None,
+                 names: list[str] | None = None) -> None:
         self.name = origin
+        self._names = list(names) if names is not None else None
         self._resume = resume
         self._known = list(known_columns) if known_columns is not None else None
         self._mark = b""
@@ -446,7 +448,14 @@ class DelimitedReader:
         elif len(names) != int(rec.fields[0]):
             raise InputError(f"cannot read {self.name!r}: the header on line "
                              f"{int(rec.lines[0])} could not be split into fields")
-        _refuse_repeated_names(header, self.delimiter, self.name, int(rec.lines[0]))
+        if self._names is not None:        # the user names the columns (--header)
+            if len(self._names) != len(names):
+                raise InputError(f"cannot read {self.name!r}: --header gives "
+                                 f"{len(self._names)} names but the header on line "
+                                 f"{int(rec.lines[0])} has {len(names)} fields")
+            names = self._names
+        else:
+            _refuse_repeated_names(header, self.delimiter, self.name, int(rec.lines[0]))
         self._columns = [str(c) for c in names]
         self.header_line = int(rec.lines[0])
         self._note_used(src.pending[:int(rec.nexts[0])])
@@ -677,4 +686,4 @@ def _refuse_repeated_names(header: bytes, delimiter: str, name: str, line: int) 
                            for field, where in repeated.items())
         raise InputError(f"cannot read {name!r}: the header on line {line} names a "
                          f"column more than once ({listed}); give each column its own "
-                         f"name")
+                         f"name, in the file or with --header NAME,NAME,...")

@@ -192,8 +192,20 @@ def _reader_position(position: dict | None) -> dict | None:
             if k in position}
 
 
+def _reader(fmt: str, names: list[str] | None, *args, **kwargs):
+    """The reader of format ``fmt``; ``names`` (a header of the user's) for CSV and TSV."""
+    if names is None:
+        return FORMATS[fmt](*args, **kwargs)
+    if fmt not in ("csv", "tsv"):
+        raise ConfigError(f"--header names the columns of CSV and TSV files; "
+                          f"{args[1]!r} is read as {fmt}")
+    return FORMATS[fmt](*args, names=names, **kwargs)
+
+
 class _FileInput:
     """One named file, read to its end."""
+
+    names: list[str] | None = None
 
     def __init__(self, path: str, fmt: str) -> None:
         self.origin = path
@@ -211,8 +223,8 @@ class _FileInput:
                     f"holds the bytes read up to offset {int(resume['offset'])} (it was "
                     f"replaced or shortened); remove the checkpoint to learn it from the "
                     f"start")
-            reader = FORMATS[self._format](lambda: stream, path, batch_rows,
-                                           resume=_reader_position(resume))
+            reader = _reader(self._format, self.names, lambda: stream, path, batch_rows,
+                             resume=_reader_position(resume))
             if reader.columns is not None:
                 check(path, reader.columns)
             fd = stream.fileno()
@@ -229,6 +241,8 @@ class _FollowedInput:
     """The last named file in follow mode: read on as it grows, across rotations and
     truncations (see :mod:`connectors.follow`)."""
 
+    names: list[str] | None = None
+
     def __init__(self, path: str, fmt: str, control: FollowControl) -> None:
         self.origin = path
         self._format = fmt
@@ -243,8 +257,8 @@ class _FollowedInput:
         at = resume if offset else None
         while True:
             stream = GrowingFile(path, self.control, handle, offset, mark)
-            reader = FORMATS[self._format](lambda ready=stream: ready, path, batch_rows,
-                                           resume=_reader_position(at), known_columns=known)
+            reader = _reader(self._format, self.names, lambda ready=stream: ready, path,
+                             batch_rows, resume=_reader_position(at), known_columns=known)
             try:
                 if reader.columns is not None:
                     check(path, reader.columns)
@@ -307,6 +321,7 @@ class _FollowedInput:
 
 class _StdinInput:
     origin = STDIN
+    names: list[str] | None = None
 
     def __init__(self, stream, fmt: str | None) -> None:
         self._stream = stream
@@ -325,7 +340,7 @@ class _StdinInput:
             stream = _Prefixed(head, stream)
             fmt = sniff_format(head)
         ready = stream
-        return FORMATS[fmt](lambda: ready, STDIN, batch_rows)
+        return _reader(fmt, self.names, lambda: ready, STDIN, batch_rows)
 
     def batches(self, index: int, batch_rows: int, resume: dict | None,
                 check: Callable[[str, list[str]], None]) -> Iterator[RawBatch]:
@@ -435,7 +450,8 @@ def _check_same_columns(first: tuple[str, list[str]], later: tuple[str, list[str
 
 
 def open_sources(specs: list[str], fmt: str | None = None, batch_rows: int = 65536,
-                 stdin: BinaryIO | None = None, follow: FollowControl | None = None) -> Source:
+                 stdin: BinaryIO | None = None, follow: FollowControl | None = None,
+                 header: list[str] | None = None) -> Source:
     """One source reading ``specs`` in order (``-`` is standard input).
 
     Parameters
@@ -454,6 +470,9 @@ def open_sources(specs: list[str], fmt: str | None = None, batch_rows: int = 655
     follow
         Follow mode: the last file is read on as it grows, is rotated or truncated,
         until ``follow`` says stop (see :mod:`connectors.follow`).
+    header
+        Column names to use instead of each CSV or TSV file's header line (which is still
+        read and skipped); they must be as many as its fields and all different.
 
     Raises
     ------
@@ -465,8 +484,16 @@ def open_sources(specs: list[str], fmt: str | None = None, batch_rows: int = 655
     specs = list(specs)
     if not specs:
         raise ConfigError("give at least one source (a file name, or - for standard input)")
+    if header is not None:
+        repeated = sorted({n for n in header if header.count(n) > 1})
+        if repeated or not all(header):
+            raise ConfigError(f"--header must name every column once, got "
+                              f"{', '.join(map(repr, header))}")
     broker = _open_broker(specs, batch_rows)
     if broker is not None:
+        if header is not None:
+            raise ConfigError("--header names the columns of files; a broker source "
+                              "takes columns=... in its URL")
         if follow is not None:
             raise ConfigError("follow mode is for files; a broker source is live already")
         return broker
@@ -505,6 +532,8 @@ def open_sources(specs: list[str], fmt: str | None = None, batch_rows: int = 655
             inputs.append(_FollowedInput(spec, name, follow))
         else:
             inputs.append(_FileInput(spec, name))
+    for item in inputs:
+        item.names = header
     return ChainedSource(inputs, batch_rows)
 
 

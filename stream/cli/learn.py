@@ -93,6 +93,7 @@ def learn_job(sources: list[str], kw: dict):
         predictions_path=kw["predictions_path"], events_path=kw["events_path"],
         window=kw["window"], batch_rows=kw["batch_rows"], category_cap=kw["category_cap"],
         class_cap=kw["class_cap"], follow=kw["follow"],
+        header=None if kw["header"] is None else [n.strip() for n in kw["header"].split(",")],
         poll_seconds=kw["poll_seconds"], idle_exit=kw["idle_exit"],
         labels=list(kw["label_sources"]),
         label_window=DEFAULT_LABEL_WINDOW if kw["label_window"] is None

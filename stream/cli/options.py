@@ -197,6 +197,9 @@ def input_options() -> Callable:
         option("--batch-rows", group=INPUT, type=int, default=65536, show_default=True,
                help="Records read per batch (memory vs. call overhead; results are "
                     "equal)."),
+        option("--header", "header", group=INPUT, metavar="NAME,NAME,...",
+               help="Column names to use instead of the first line's (CSV, TSV), e.g. to "
+                    "tell apart two columns the file names alike."),
         option("--category-cap", group=INPUT, type=int, default=DEFAULT_CATEGORY_CAP,
                show_default=True,
                help="Distinct values a category field keeps apart; later new values are "

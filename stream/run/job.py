@@ -46,7 +46,8 @@ class LearnJob:
     ``label_seconds`` of data time; ``id_field`` declares the id field (see
     :mod:`stream.run.delayed_labels`).
 
-    Memory: ``category_cap`` distinct values of each category field are kept apart,
+    ``header`` names the columns of CSV and TSV files instead of their header lines
+    (to tell apart columns the file names alike). Memory: ``category_cap`` distinct values of each category field are kept apart,
     later new values share one code; ``class_cap`` classes at most, a record with one
     more goes to the quarantine (see :class:`stream.run.encoding.Encoder`).
     """
@@ -75,6 +76,7 @@ class LearnJob:
     window: int = 1000
     fading: float = 0.999
     batch_rows: int = 65536
+    header: list[str] | None = None
     category_cap: int = DEFAULT_CATEGORY_CAP
     class_cap: int = DEFAULT_CLASS_CAP
     checkpoint_path: str | None = None

@@ -30,7 +30,8 @@ def batch_rows_for(job: LearnJob) -> int:
 def open_run_source(job: LearnJob, follow: FollowControl | None,
                     position: dict | None) -> Source:
     """The job's sources as one stream of batches, sought to ``position`` if given."""
-    source = open_sources(job.sources, job.fmt, batch_rows_for(job), follow=follow)
+    source = open_sources(job.sources, job.fmt, batch_rows_for(job), follow=follow,
+                          header=job.header)
     if job.checkpoint_path and not getattr(source, "resumable", True) \
             or job.checkpoint_path and not hasattr(source, "seek"):
         source.close()

@@ -305,3 +305,32 @@ def test_a_header_naming_a_column_twice_is_refused_with_both_positions(tmp_path)
     with pytest.raises(InputError, match=r"names a column more than once \('y' in "
                                          r"columns 1, 3\)"):
         list(reader.batches())
+
+
+def test_header_names_given_by_the_user_tell_repeated_columns_apart(tmp_path):
+    path = tmp_path / "twice.csv"
+    path.write_text("y,x,y\n1,2,a\n3,4,b\n")
+    reader = CsvReader(lambda: open(path, "rb"), str(path), 100, names=["y_old", "x", "y"])
+    (batch,) = list(reader.batches())
+    assert list(batch.frame.columns) == ["y_old", "x", "y"]
+    assert batch.frame["y"].tolist() == ["a", "b"] and batch.lines.tolist() == [2, 3]
+    short = CsvReader(lambda: open(path, "rb"), str(path), 100, names=["a", "b"])
+    with pytest.raises(InputError, match="--header gives 2 names but the header on line 1 "
+                                         "has 3 fields"):
+        list(short.batches())
+
+
+def test_the_run_learns_the_column_the_user_names(tmp_path):
+    from stream.errors import ConfigError
+    from stream.run.engine import run_learn
+    from stream.run.job import LearnJob
+
+    path = tmp_path / "twice.csv"
+    path.write_text("y,x,y\n" + "".join(f"{i % 2},{i / 10},{'ab'[i % 3 == 0]}\n"
+                                         for i in range(30)))
+    summary = run_learn(LearnJob(sources=[str(path)], target="y",
+                                 header=["y_old", "x", "y"],
+                                 quarantine_path=str(tmp_path / "q.jsonl")))
+    assert sorted(summary["classes"]) == ["a", "b"] and summary["learned"] == 30
+    with pytest.raises(ConfigError, match="--header must name every column once"):
+        run_learn(LearnJob(sources=[str(path)], target="y", header=["y", "x", "y"]))
