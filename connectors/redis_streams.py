@@ -25,6 +25,11 @@ How exactly-once works (Redis documentation of XREADGROUP, XACK, XPENDING, XAUTO
   reads new entries (XREADGROUP with ``>``).
 * After a lost connection it reads its own PEL again from the last entry it handed out,
   so entries the server assigned to it in a reply that never arrived are not skipped.
+  First it closes the lost connection on the server (CLIENT KILL ID, its id taken with
+  CLIENT ID at connect): a command sent into a cut link can reach the server seconds
+  after the link is back and would assign entries on a connection nobody reads.
+* Before it ends (``idle_exit``) it asks for pending entries after the last one handed
+  out (XPENDING) and reads them first, so no entry it holds is left unseen.
 * Entries deleted from the stream before they were read (XDEL, MAXLEN trimming) come
   back as ids without fields; they go to quarantine and are acknowledged.
 
@@ -194,6 +199,8 @@ class RedisStreamSource:
         self._sleep = sleep
         self._backoff = Backoff(0.5, 30.0, rng)
         self._client = None
+        self._client_id: int | None = None    # the server's id of our connection
+        self._stale_ids: list[int] = []       # ids of connections lost, to be closed
         self._seq = 0
         self._covered: tuple[int, int] | None = None  # last id of the checkpoint
         self._high: tuple[int, int] | None = None  # covered or handed out, whichever later
@@ -257,7 +264,7 @@ class RedisStreamSource:
                              retry=Retry(NoBackoff(), 0),  # sapwood retries, with backoff
                              protocol=2,  # replies shaped as the command docs show them
                              client_name=f"sapwood:{self._consumer}", **kwargs)
-        for command in ("XREADGROUP", "XAUTOCLAIM"):
+        for command in ("XREADGROUP", "XAUTOCLAIM", "XPENDING"):
             client.set_response_callback(command, _raw)
         try:
             client.ping()
@@ -266,7 +273,33 @@ class RedisStreamSource:
         except redis.ResponseError as exc:
             raise input_error(self.name, f"the server refused the connection: {exc}") from exc
         self._client = client
+        self._close_stale(client)
+        try:
+            self._client_id = int(client.client_id())
+        except redis.ResponseError:     # an ACL without CLIENT ID: nothing to close later
+            self._client_id = None
         self._create_group()
+
+    def _close_stale(self, client) -> None:
+        """Close, on the server, the connections this source lost.
+
+        A command sent on a connection that then went dead may reach the server long
+        after (TCP delivers it once the link is back) and an XREADGROUP there would
+        assign entries to this consumer on a connection nobody reads: entries pending
+        but never seen, or seen out of order. Closing the old connection (CLIENT KILL ID)
+        before this consumer reads its pending entries again rules that out.
+        """
+        import redis
+
+        while self._stale_ids:
+            stale = self._stale_ids.pop()
+            try:
+                client.execute_command("CLIENT", "KILL", "ID", stale)
+            except redis.ResponseError as exc:
+                if "No such client" not in str(exc):
+                    log.warning("%s: cannot close the lost connection %d (%s); entries a "
+                                "late command assigns to it are read before the run ends",
+                                self.name, stale, exc)
 
     def _create_group(self) -> None:
         import redis
@@ -315,6 +348,9 @@ class RedisStreamSource:
                             retriable=self._retriable(), what="reach the server")
 
     def _lost_connection(self) -> None:
+        if self._client_id is not None:
+            self._stale_ids.append(self._client_id)
+            self._client_id = None
         self._drop_client()
         self.reconnects += 1
         # a reply lost with the connection may have assigned entries to this consumer:
@@ -393,9 +429,21 @@ class RedisStreamSource:
             elif not pending:
                 if self._idle_exit is not None and \
                         self._clock() - last_entry >= self._idle_exit:
+                    if self._unread_pending():
+                        self._cursor = self._last_text.encode() if self._last_text \
+                            else b"0"
+                        continue
                     return
                 if self.on_quiet is not None:
                     self.on_quiet()
+
+    def _unread_pending(self) -> bool:
+        """Whether this consumer holds pending entries after the last one handed out:
+        assigned by a command whose reply was lost (XPENDING, extended form)."""
+        start = "(" + self._last_text if self._last_text else "-"
+        _, reply = self._call("XPENDING", self._stream, self._group, start, "+", 1,
+                              self._consumer)
+        return bool(reply)
 
     def _batch(self, entries: list) -> RawBatch | None:
         """Entries read -> a batch; entries up to the covered or handed-out id are

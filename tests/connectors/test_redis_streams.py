@@ -469,3 +469,67 @@ def test_a_caught_up_run_stops_within_a_second_of_sigterm_with_a_checkpoint(
     assert facts["stopped"] == "SIGTERM" and facts["learned"] == 2_000
     assert facts["checkpoint"]["written"] >= 1 and ckpt.exists()
     assert pending_count(server, stream) == 0
+
+
+def test_a_command_delivered_late_after_a_network_cut_assigns_nothing_unseen(server, stream):
+    """A cut link: the XREADGROUP sent into it reaches the server seconds after the link
+    is back (TCP retransmission) and would assign new entries to this consumer on a
+    connection nobody reads. The source closes its lost connection on the server
+    (CLIENT KILL ID, Redis documentation of CLIENT KILL) before reading its pending
+    entries again: every entry is handed out once, in id order, and none stays pending
+    unseen (XPENDING)."""
+    from tests.connectors.link_cut import CutLink
+
+    link = CutLink(server.port)
+    add(server, stream, 20)
+    url = f"redis://127.0.0.1:{link.port}/0?stream={stream}"
+    src = RedisStreamSource(url, 1000, idle_exit=4, linger=0.2, connect_timeout=0.5,
+                            retry=60, rng=random.Random(3))
+    got, done = [], threading.Event()
+    producing = threading.Event()
+
+    def produce():
+        n = 20
+        while not producing.wait(0.02):
+            add(server, stream, 1, start=n)
+            n += 1
+
+    def consume():
+        try:
+            for batch in src.batches():
+                got.append(batch)
+                if len(got) == 1:
+                    link.cut()      # the next read goes into the cut link
+                    threading.Thread(target=produce, daemon=True).start()
+                    threading.Timer(2.0, lambda: link.restore(late=1.5)).start()
+                    threading.Timer(6.0, producing.set).start()
+        finally:
+            done.set()
+
+    reader = threading.Thread(target=consume, daemon=True)
+    reader.start()
+    assert done.wait(60), "the source did not end"
+    src.close()
+    link.stop()
+    numbers = values(got)
+    total = server.client().xlen(stream)
+    assert src.reconnects >= 1 and total > 40
+    assert sorted(numbers) == list(range(total)), "an entry was lost or handed out twice"
+    assert numbers == sorted(numbers), "an entry was handed out out of order"
+
+
+def test_entries_assigned_but_never_seen_are_read_before_an_idle_exit(server, stream):
+    """Entries this consumer holds pending but was never handed (assigned on another
+    connection, e.g. one the server would not let it close) are read before the source
+    ends (XPENDING, extended form, from the last entry handed out)."""
+    add(server, stream, 3)
+    src = RedisStreamSource(server.url(stream=stream), 100, idle_exit=0.5, retry=5,
+                            linger=0.1)
+    it = src.batches()
+    assert values([next(it)]) == [0, 1, 2]
+    add(server, stream, 1, start=3)
+    # the same consumer name reads on a connection of its own: entry 3 is now pending
+    server.client().xreadgroup("sapwood", "sapwood", {stream: ">"}, count=1)
+    rest = list(it)
+    src.close()
+    assert values(rest) == [3]
