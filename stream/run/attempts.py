@@ -20,7 +20,7 @@ from pathlib import Path
 from .atomic import write_atomic
 from .checkpoint import rollback_snapshots
 
-MARKER = ".sapwood-attempt.json"
+MARKER = ".sapwood-attempt"   # no .json: tools that list snapshot files skip it
 
 
 def begin_attempt(directory: str, checkpoint_path: str, fresh: bool) -> int:

@@ -251,8 +251,9 @@ class LearnRun:
                          key=lambda r: (r.line, r.field or ""))
         if self.job.strict:
             raise RecordError(rejects[0].message() + " (strict mode stops here)")
+        before = self.outputs.quarantine.count
         self.outputs.quarantine.write(rejects)
-        self.records += len(rejects)
+        self.records += self.outputs.quarantine.count - before   # records, not values
         if self._first_unread is None:
             self._first_unread = rejects[0]
 

@@ -38,7 +38,6 @@ from typing import Any, Callable
 
 from stream.checks import require_int
 from stream.errors import ConfigError, ModelFileError
-from stream.rules.document import check_rules_document
 
 from .atomic import write_atomic
 from .model_file import json_problem
@@ -229,7 +228,7 @@ class SnapshotStore:
             raise ModelFileError(f"{str(path)!r} is corrupt: not valid JSON ({exc})") from None
         if not isinstance(document, dict) or document.get("sequence") != sequence:
             raise ModelFileError(f"{str(path)!r} is corrupt: it does not hold snapshot {sequence}")
-        return check_rules_document(document, repr(str(path)))
+        return document
 
     def _read_index(self) -> list[dict] | None:
         path = self.directory / INDEX_NAME

@@ -32,6 +32,7 @@ from stream.rules.rule import Rule, rules_from_payload
 from stream.rules.text import CAUTION, rule_conditions_text
 from stream.run.snapshots import SnapshotStore
 
+from .rule_sources import read_snapshot
 from .run_logs import LogTail, check_event, event_path_text
 
 BLOCKS = "▁▂▃▄▅▆▇█"
@@ -85,7 +86,7 @@ class WatchState:
                            and entries[-1]["sequence"] == self.snapshot["sequence"]):
             self.entries = entries
             return False
-        document = self.store.load(entries[-1]["sequence"])
+        document = read_snapshot(self.store, entries[-1]["sequence"])
         self.entries = entries
         self.snapshot = document
         self.rules = rules_from_payload(document)

@@ -36,7 +36,7 @@ from stream.rules.text import (
 from stream.run.atomic import write_atomic
 from stream.run.snapshots import SnapshotStore
 
-from .rule_sources import header_of
+from .rule_sources import header_of, read_snapshot
 from .run_logs import event_path_text, read_events, read_metrics
 from .svg_plot import PALETTE, Marker, Series, bar_chart, line_chart
 
@@ -72,7 +72,7 @@ def load_report_data(snapshot_dir: str, metrics_path: str | None = None,
     if sampled:
         step = (len(entries) - 1) / (max_snapshots - 1)
         entries = [entries[round(k * step)] for k in range(max_snapshots)]
-    snapshots = [store.load(e["sequence"]) for e in entries]
+    snapshots = [read_snapshot(store, e["sequence"]) for e in entries]
     if metrics_path and not os.path.exists(metrics_path):
         raise InputError(f"cannot read {metrics_path!r}: no such file")
     metrics = read_metrics(metrics_path) if metrics_path else []

@@ -17,13 +17,20 @@ _HEADER_KEYS = ("target", "task", "classes", "records", "accuracy", "kappa",
                 "window_accuracy", "mae", "rmse", "r2", "data_time", "written_at", "sequence")
 
 
+def read_snapshot(store: SnapshotStore, sequence: int) -> dict:
+    """Snapshot ``sequence`` of ``store``, its fields checked for what views read (a
+    hand-edited or damaged file gives a message, not a traceback)."""
+    where = f"snapshot {sequence} in {str(store.directory)!r}"
+    return check_rules_document(store.load(sequence), where)
+
+
 def load_rules(path: str) -> tuple[dict, list[Rule]]:
     """(header, rules) from a model file, a snapshot JSON file or a snapshot directory."""
     if os.path.isdir(path):
         entries = SnapshotStore(path).entries()
         if not entries:
             raise InputError(f"{path!r} holds no snapshots")
-        payload = SnapshotStore(path).load(entries[-1]["sequence"])
+        payload = read_snapshot(SnapshotStore(path), entries[-1]["sequence"])
         return _from_payload(payload)
     try:
         with open(path, "rb") as handle:
@@ -80,7 +87,7 @@ def load_side(path: str, sequence: int | None = None) -> tuple[dict, list[Rule]]
             if not entries:
                 raise InputError(f"{path!r} holds no snapshots")
             sequence = entries[-1]["sequence"]
-        document = store.load(sequence)
+        document = read_snapshot(store, sequence)
         return header_of(document), rules_from_payload(document)
     if sequence is not None:
         raise ConfigError(f"a snapshot number needs a snapshot directory, got the file "
