@@ -49,6 +49,7 @@ from .encoding import EncodedBatch, Encoder
 from .job import LearnJob
 from .notices import FieldNotices
 from .outputs import RunOutputs, json_default
+from .read_ahead import ReadAhead
 from .reading import held_enough, infer_run_schema, open_run_source
 from .resume import RunCheckpoint
 from .saved_model import save_model
@@ -214,10 +215,13 @@ class LearnRun:
         return []
 
     def _read_all(self) -> None:
-        """Every batch of the source, through schema inference, learning and checkpoints."""
+        """Every batch of the source, through schema inference, learning and checkpoints.
+        Files and pipes are read one batch ahead on a thread of their own."""
         self._pending = []
+        live = self.job.follow or hasattr(self.source, "on_quiet")
+        ahead = None if live else ReadAhead(self.source.batches())
         try:
-            for batch in self.source.batches():
+            for batch in (self.source.batches() if ahead is None else ahead):
                 if self.task is None:
                     self._pending.append(batch)
                     if held_enough(self._pending):
@@ -228,6 +232,8 @@ class LearnRun:
                 if self.stop.is_set():
                     break
         finally:
+            if ahead is not None:
+                ahead.close()
             # read but not yet learned (a stop, the end or an unreadable rest came
             # during inference)
             if self._pending and sys.exc_info()[0] in (None, FollowStopped, InputError):
@@ -367,8 +373,12 @@ class LearnRun:
             self.last_time = float(times[index])
 
     def _until_boundary(self) -> int:
+        """Records to learn before the next metrics-log row or snapshot. A metrics row
+        holds the tree's size then, so the learning is cut there; without a metrics log
+        the scores' rows need no cut (the scoring pass makes them at any batch size)."""
         learned = self.task.records_learned
-        gap = self.job.metrics_every - learned % self.job.metrics_every
+        gap = self.job.metrics_every - learned % self.job.metrics_every \
+            if self.outputs.metrics_out is not None else 1 << 62
         to_snapshot = self.outputs.records_to_boundary(learned)
         return min(gap, to_snapshot) if to_snapshot else gap
 
