@@ -19,6 +19,10 @@ end-to-end
 memory
     Peak memory of ``sapwood learn -`` reading 200k and 2M rows through a pipe, and 200k
     rows with a category holding a different value in every row.
+feed-path
+    For each learner stream: the in-memory rate against ``sapwood learn FILE`` and
+    ``sapwood learn -`` on the same records, drift off and ADWIN, and a bare
+    ``pandas.read_csv`` (:mod:`stream.bench.feed_path`).
 feeds
     Records/s from a file, a Redis stream and an MQTT topic, and the cost of a checkpoint
     every 10,000 records (:mod:`stream.bench.feeds`).
@@ -37,7 +41,8 @@ milliseconds could be missed. Linux only; 1 MB = 10^6 bytes.
 Modules: ``common`` (bench, results, registry), ``streams`` (the generated streams),
 ``learners`` (the learners, drift and regression suites, in memory), ``regression``
 (regression streams and river's regression trees), ``end_to_end`` (the end-to-end and
-memory suites, ``sapwood learn`` as a child process), ``feeds`` (live feeds), ``rules``
+memory suites, ``sapwood learn`` as a child process), ``feed_path``, ``feeds`` (live
+feeds), ``rules``
 (the rule views),
 ``output`` (text, Markdown and JSON of the results), ``command`` (``sapwood bench``).
 """

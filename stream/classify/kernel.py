@@ -26,8 +26,8 @@ from stream.tree.bound import hoeffding_bound
 from stream.tree.drift import (ADWIN, NO_DETECTOR, adwin_mean, adwin_reset, adwin_update,
                                page_hinkley_reset, page_hinkley_rose, page_hinkley_update)
 from stream.tree.kernel import (add_event, deactivate, heaviest_child, kill_subtree,
-                                next_node, place_leaf, recycle_dead, swap_in_alternate,
-                                take_detector_row)
+                                next_node, place_leaf, recycle_dead, slot_to_spare,
+                                spare_slots, swap_in_alternate, take_detector_row)
 
 from .criteria import criterion_range
 from .splits import (category_best, category_equals_post, category_log_likelihood,
@@ -292,25 +292,18 @@ def worst_case(t):
 
 
 @njit
-def spare_slots(t) -> int:
-    """Slots kept free for the leaves one record may activate outright: a new branch
-    per level and an alternate per node of each tree's path."""
-    depth = t.state[S_MAX_DEPTH] + 2
-    trees = 1
-    if t.cfg_i[C_DETECTOR] != NO_DETECTOR:
-        trees = 1 + t.state[S_ALTS] + depth
-    return trees * (depth + 2)
+def slots_needed(t) -> int:
+    """Statistics slots the tables must hold before a record is learned: the leaves
+    active now or the live leaves the budget allows, plus the spare ones
+    (:func:`stream.tree.kernel.spare_slots`)."""
+    allowed = min(t.state[S_LEAVES], leaf_cap(t))
+    return max(t.state[S_ACTIVE], allowed) + spare_slots(t.state, watches(t))
 
 
 @njit
-def slots_needed(t) -> int:
-    """Statistics slots the tables must hold before a record is learned: the leaves
-    active now or the live leaves the budget allows, plus :func:`spare_slots`. The
-    children of a split and reactivated leaves take a slot only when one is free
-    beyond the spare ones (:func:`activate_if_room`), so a split into many branches
-    never reserves slots ahead."""
-    allowed = min(t.state[S_LEAVES], leaf_cap(t))
-    return max(t.state[S_ACTIVE], allowed) + spare_slots(t)
+def watches(t) -> bool:
+    """Whether drift detection is on (alternates may grow)."""
+    return t.cfg_i[C_DETECTOR] != NO_DETECTOR
 
 
 @njit
@@ -368,13 +361,9 @@ def activate(t, n: int) -> None:
 
 @njit
 def activate_if_room(t, n: int) -> None:
-    """Activate leaf ``n`` if a slot is free beyond the spare ones; otherwise mark that
-    leaves wait for slots: the record loop returns after this record, Python grows the
-    slot tables and the next call activates them first, before any record reads them."""
-    if t.state[S_FREE_TOP] > spare_slots(t):
+    """Activate leaf ``n`` if a slot is free beyond the spare ones (else it waits)."""
+    if slot_to_spare(t.state, watches(t)):
         activate(t, n)
-    else:
-        t.state[S_WANTS_SLOTS] = 1
 
 
 @njit

@@ -61,12 +61,12 @@ import numpy as np
 from stream.jit import njit
 from stream.tree.drift import (A_TOTAL, A_WIDTH, ADWIN, NO_DETECTOR, adwin_update,
                                page_hinkley_update)
-from stream.tree.kernel import deactivate, next_node, recycle_dead
+from stream.tree.kernel import deactivate, next_node, recycle_dead, spare_slots
 
 from .criteria import split_confident
 from .drift import error_scale_update, error_unit, normalised_error
 from .nodes import (activate, activate_if_room, enforce_leaf_cap, fresh_detector, leaf_cap,
-                    new_leaf, react, spare_slots)
+                    new_leaf, react)
 from .splits import category_best, observe, quantile_best
 from .tables import (ABS_ERROR, ALT, CHILD_START, DEPTH, DET, EQUALS, ERR_LINEAR, ERR_MEAN,
                      ERR_N, ERR_SQ, ERR_SUM, FEATURE, FM_KIND, FM_LOCAL, FM_SEEN, KIND,
@@ -511,11 +511,10 @@ def has_room(t) -> bool:
 def slots_needed(t) -> int:
     """Statistics slots the tables must hold before a record is learned: the leaves
     active now or the live leaves the budget allows, plus the spare ones
-    (:func:`stream.regress.nodes.spare_slots`). The children of a split and reactivated
-    leaves take a slot only when one is free beyond the spare ones, so a split into many
-    branches never reserves slots ahead."""
+    (:func:`stream.tree.kernel.spare_slots`)."""
     allowed = min(t.state[S_LEAVES], leaf_cap(t))
-    return max(t.state[S_ACTIVE], allowed) + spare_slots(t)
+    return max(t.state[S_ACTIVE], allowed) + spare_slots(t.state,
+                                                       t.cfg_i[RC_DETECTOR] != NO_DETECTOR)
 
 
 # ---------------------------------------------------------------- splitting

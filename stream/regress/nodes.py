@@ -4,7 +4,7 @@ the classifier, are in :mod:`stream.tree.kernel`.
 
 Contents
 --------
-new_leaf / fresh_detector / activate / spare_slots / activate_if_room
+new_leaf / fresh_detector / activate / activate_if_room
     A leaf from the free-id stack (or the end of the table) with a fresh detector; a
     statistics slot given (:func:`stream.tree.kernel.deactivate` takes it back), or
     a leaf left waiting when no slot is free beyond those kept for one record.
@@ -28,7 +28,7 @@ from stream.jit import njit
 from stream.tree.drift import (ADWIN, NO_DETECTOR, adwin_mean, adwin_reset,
                                page_hinkley_reset, page_hinkley_rose)
 from stream.tree.kernel import (add_event, deactivate, kill_subtree, place_leaf,
-                                swap_in_alternate, take_detector_row)
+                                slot_to_spare, swap_in_alternate, take_detector_row)
 
 from .drift import DROP, SWAP, error_mean, reset_error, swap_verdict
 from .tables import (ALT, ALT_OF, ALTERNATE, BRANCH, DEPTH, DET, ERR_LINEAR, ERR_MEAN,
@@ -36,7 +36,7 @@ from .tables import (ALT, ALT_OF, ALTERNATE, BRANCH, DEPTH, DET, ERR_LINEAR, ERR
                      OBSERVED, PARENT, RC_DETECTOR, RC_MAX_DEPTH, RC_SWAP_AFTER,
                      RF_MEMORY_BYTES, RF_PH_THRESHOLD, RF_SWAP_SIGNIFICANCE, S_ACTIVE,
                      S_ALARMS, S_ALTS, S_CATS_SEEN, S_DEACTIVATED, S_DROPS, S_FREE_TOP,
-                     S_LEAVES, S_MAX_DEPTH, S_NODES, S_STARTS, S_WANTS_SLOTS, SLOT, STATUS,
+                     S_LEAVES, S_NODES, S_STARTS, SLOT, STATUS,
                      Y_M2)
 
 
@@ -89,25 +89,11 @@ def activate(t, n: int) -> None:
 
 
 @njit
-def spare_slots(t) -> int:
-    """Slots kept free for the leaves one record may activate outright: a new branch
-    per level and an alternate per node of each tree's path."""
-    depth = t.state[S_MAX_DEPTH] + 2
-    trees = 1
-    if t.cfg_i[RC_DETECTOR] != NO_DETECTOR:
-        trees = 1 + t.state[S_ALTS] + depth
-    return trees * (depth + 2)
-
-
-@njit
 def activate_if_room(t, n: int) -> None:
-    """Activate leaf ``n`` if a slot is free beyond the spare ones; otherwise mark that
-    leaves wait for slots: the record loop returns after this record, Python grows the
-    slot tables and the next call activates them first, before any record reads them."""
-    if t.state[S_FREE_TOP] > spare_slots(t):
+    """Activate leaf ``n`` if a slot is free beyond the spare ones (else it waits; see
+    :func:`stream.tree.kernel.slot_to_spare`)."""
+    if slot_to_spare(t.state, t.cfg_i[RC_DETECTOR] != NO_DETECTOR):
         activate(t, n)
-    else:
-        t.state[S_WANTS_SLOTS] = 1
 
 
 # ---------------------------------------------------------------- memory budget

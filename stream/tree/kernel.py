@@ -36,7 +36,8 @@ from .layout import (ALT, ALT_OF, BRANCH, CHILD_START, CREATED, DEAD, DEPTH, DET
                      EV_AFTER, EV_BEFORE, EV_KIND, EV_NODE, EV_OTHER, EV_RECORD, FEATURE,
                      FREE, KIND, LEAF, N_CHILDREN, NUMERIC, PARENT, S_ACTIVE, S_ALTS,
                      S_CREATED, S_DEAD, S_EVENTS, S_FREE_DETS, S_FREE_NODES, S_FREE_TOP,
-                     S_LEAVES, S_MAX_DEPTH, S_NODES, S_ROOT, S_SWAPS, SLOT, STATUS, SWAPPED,
+                     S_LEAVES, S_MAX_DEPTH, S_NODES, S_ROOT, S_SWAPS, S_WANTS_SLOTS, SLOT,
+                     STATUS, SWAPPED,
                      THRESHOLD, WEIGHT)
 
 
@@ -127,6 +128,28 @@ def deactivate(t, n: int) -> None:
     t.state[S_FREE_TOP] = top + 1
     t.node_i[n, SLOT] = -1
     t.state[S_ACTIVE] -= 1
+
+
+@njit
+def spare_slots(state, watching: bool) -> int:
+    """Slots kept free for the leaves one record may activate outright: a new branch
+    per level and an alternate per node of each tree's path (``watching``: drift
+    detection is on, so alternates grow)."""
+    depth = state[S_MAX_DEPTH] + 2
+    trees = 1 + state[S_ALTS] + depth if watching else 1
+    return trees * (depth + 2)
+
+
+@njit
+def slot_to_spare(state, watching: bool) -> bool:
+    """Whether a leaf may take a slot now: one is free beyond the spare ones. If not,
+    marks that leaves wait for slots: the record loop returns after the record, Python
+    grows the slot tables and the next call activates them before any record reads
+    them (the children of a split into many branches never reserve slots ahead)."""
+    if state[S_FREE_TOP] > spare_slots(state, watching):
+        return True
+    state[S_WANTS_SLOTS] = 1
+    return False
 
 
 # ---------------------------------------------------------------- walks, death and recycling

@@ -197,7 +197,7 @@ def test_markdown_table_has_one_line_per_row(monkeypatch, tmp_path):
 
 def test_suites_and_streams_are_registries(tmp_path):
     assert list(common.SUITES) == ["learners", "drift", "regression", "end-to-end", "memory",
-                                  "feeds", "rules"]
+                                  "feed-path", "feeds", "rules"]
     assert list(streams.STREAMS) == ["sea", "agrawal", "hyperplane", "rbf10", "rbf100", "led"]
     assert streams.STREAMS["rbf100"].min_ratio == 50 and streams.STREAMS["sea"].min_ratio == 100
     with pytest.raises(SapwoodError, match="suite must be one of"):
@@ -233,3 +233,15 @@ def test_rules_suite_times_the_views_of_a_bushy_tree(tmp_path):
     assert all(r["seconds"] > 0 for r in result.rows)
     assert [c.unit for c in result.checks] == ["s", "s"]
     assert (tmp_path / "rules.html").exists()
+
+
+def test_feed_path_suite_learns_every_record_three_ways(tmp_path):
+    run = Bench(tmp_path, records=3_000, streams=("agrawal",), repeats=1,
+                say=lambda message: None)
+    (result,) = run_bench(run, ["feed-path"])
+    assert [(r["stream"], r["drift"]) for r in result.rows] == [("agrawal", "off"),
+                                                                 ("agrawal", "adwin")]
+    for row in result.rows:
+        assert row["learned"] == [3_000, 3_000]       # file and stdin: every record
+        assert row["file_ratio"] == pytest.approx(row["file_rps"] / row["memory_rps"])
+    assert [c.target for c in result.checks] == [0.8] * 4

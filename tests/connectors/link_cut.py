@@ -52,35 +52,28 @@ class CutLink:
             self._start(self._down, pair)
 
     def _up(self, pair: dict) -> None:
-        while True:
-            try:
-                data = pair["client"].recv(65536)
-            except OSError:
-                return
-            if not data:
-                return
-            with self._lock:
-                if self._cut or pair["dead"]:
-                    pair["held"] += data
-                    continue
-            try:
-                pair["server"].sendall(data)
-            except OSError:
-                return
+        self._pump(pair, "client", "server", hold=True)
 
     def _down(self, pair: dict) -> None:
+        self._pump(pair, "server", "client", hold=False)
+
+    def _pump(self, pair: dict, source: str, sink: str, hold: bool) -> None:
+        """Relay ``source`` to ``sink``; while cut (or for a connection of the cut)
+        bytes to the server are held, bytes to the client lost."""
         while True:
             try:
-                data = pair["server"].recv(65536)
+                data = pair[source].recv(65536)
             except OSError:
                 return
             if not data:
                 return
             with self._lock:
                 if self._cut or pair["dead"]:
-                    continue       # lost on the way
+                    if hold:
+                        pair["held"] += data
+                    continue
             try:
-                pair["client"].sendall(data)
+                pair[sink].sendall(data)
             except OSError:
                 return
 
