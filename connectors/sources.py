@@ -108,6 +108,11 @@ class _Prefixed:
         self._rest.close()
 
 
+_LINGER = 0.005
+"""Seconds live standard input waits for more bytes before handing out a short read: a
+fast producer then fills whole blocks (a pipe holds 64 KiB), a slow one waits 5 ms."""
+
+
 class _LiveStdin:
     """Standard input that returns what has arrived instead of waiting for a full block.
 
@@ -125,7 +130,7 @@ class _LiveStdin:
             return self._raw.read()
         data = self._raw.read1(size)
         parts, have = [data], len(data)
-        while data and have < size and select.select([self._fd], [], [], 0)[0]:
+        while data and have < size and select.select([self._fd], [], [], _LINGER)[0]:
             data = self._raw.read1(size - have)
             parts.append(data)
             have += len(data)
