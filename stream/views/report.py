@@ -187,7 +187,7 @@ def _snapshot_rows(snapshots: Sequence[dict]) -> list[dict]:
     return rows
 
 
-def _cards(last: dict, snapshot: dict, event_count: int) -> str:
+def _cards(last: dict, snapshot: dict, events: Sequence[dict]) -> str:
     tree = snapshot.get("tree") or {}
     items = [(f"{last.get('records', snapshot.get('records', 0)):,}", "records learned"),
              (_pct(last.get("accuracy")), "prequential accuracy"),
@@ -195,7 +195,8 @@ def _cards(last: dict, snapshot: dict, event_count: int) -> str:
              ("n/a" if last.get("kappa") is None else f"{last['kappa']:.3f}", "kappa"),
              (str(len(snapshot.get("rules", []))), "rules now"),
              (str(tree.get("depth", last.get("depth", "n/a"))), "tree depth"),
-             (str(event_count), "drift events")]
+             (str(sum(e.get("kind") == "swap" for e in events)), "confirmed changes (swaps)"),
+             (str(sum(e.get("kind") == "alarm" for e in events)), "unconfirmed alarms")]
     return '<div class="cards">' + "".join(
         f'<div class="card"><b>{escape(v)}</b><span>{escape(k)}</span></div>'
         for v, k in items) + "</div>"
@@ -364,7 +365,7 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
            + (f", data up to {escape(str(last_doc['data_time']))}"
               if last_doc.get("data_time") else "") + ".</p>",
            f'<div class="safety" id="safety"><b>Safety.</b> {escape(CAUTION_IN_FULL)}</div>',
-           _cards(last, last_doc, len(data.events))]
+           _cards(last, last_doc, data.events)]
     if not from_log:
         out.append('<p class="meta">No metrics log was given: the charts use the '
                    "metrics stored with each snapshot.</p>")

@@ -23,7 +23,14 @@ from typing import Sequence
 PALETTE = ("#1f5f99", "#d9731a", "#2a8a4a", "#8e3b8e", "#b8323a", "#5c6b73")
 MARKER_COLORS = {"alarm": "#b8323a", "start": "#d9731a", "swap": "#1f5f99",
                  "drop": "#5c6b73"}
-MARKER_DASH = {"alarm": "", "start": "4 3", "swap": "1 2", "drop": "6 2 1 2"}
+MARKER_DASH = {"alarm": "2 3", "start": "4 3", "swap": "", "drop": "6 2 1 2"}
+MARKER_WEIGHT = {"swap": (2.5, 1.0), "alarm": (1.0, 0.35), "start": (1.0, 0.6),
+                 "drop": (1.0, 0.6)}
+"""Stroke width and opacity per event kind: a swap (a change confirmed: the alternate
+beat the part it replaces) stands out; an alarm (a detector's suspicion, often not
+confirmed) stays faint."""
+MARKER_NAMES = {"swap": "swap (confirmed change)", "alarm": "alarm (unconfirmed)",
+                "start": "alternate started", "drop": "alternate dropped"}
 
 
 @dataclasses.dataclass(frozen=True)
@@ -217,22 +224,25 @@ def line_chart(series: Sequence[Series], plot_id: str, title: str, x_label: str,
         y_domain = nice_domain(*((min(ys), max(ys)) if ys else (0.0, 1.0)))
     legend = [(s.name, s.color, s.dash) for s in series]
     kinds = sorted({m.kind for m in markers})
-    legend += [(f"drift {k}", MARKER_COLORS.get(k, "#5c6b73"), MARKER_DASH.get(k, "2 2"))
-               for k in kinds]
+    legend += [(f"drift {MARKER_NAMES.get(k, k)}", MARKER_COLORS.get(k, "#5c6b73"),
+                MARKER_DASH.get(k, "2 2")) for k in kinds]
     frame = _Frame(width, height, x_domain, tuple(y_domain), top=_top_for(legend, 62, width))
     y_ticks = [t for t in nice_ticks(frame.y0, frame.y1) if frame.y0 <= t <= frame.y1]
     x_ticks = [t for t in nice_ticks(frame.x0, frame.x1, 6) if frame.x0 <= t <= frame.x1]
     out = frame.open_svg(plot_id, title)
     out += frame.axes(x_ticks, y_ticks, x_label, y_label,
                       (lambda t: f"{100 * t:g}%") if percent else None)
-    for m in markers:
+    # faint kinds first, so a swap is drawn over the alarms around it
+    for m in sorted(markers, key=lambda m: MARKER_WEIGHT.get(m.kind, (1.0, 0.6))):
         x = _f(frame.x(m.x))
         dash = MARKER_DASH.get(m.kind, "2 2")
         dash_attr = f' stroke-dasharray="{dash}"' if dash else ""
+        width, opacity = MARKER_WEIGHT.get(m.kind, (1.0, 0.6))
         out.append(f'<line class="marker" data-kind="{escape(m.kind)}" data-x="{m.x!r}" '
                    f'x1="{x}" x2="{x}" y1="{frame.top}" y2="{frame.top + frame.h}" '
-                   f'stroke="{MARKER_COLORS.get(m.kind, "#5c6b73")}" stroke-width="1.5"'
-                   f'{dash_attr}><title>{escape(m.label)}</title></line>')
+                   f'stroke="{MARKER_COLORS.get(m.kind, "#5c6b73")}" stroke-width="{width}" '
+                   f'stroke-opacity="{opacity}"{dash_attr}><title>{escape(m.label)}</title>'
+                   f'</line>')
     for s in series:
         keep = thin_points(s.xs, s.ys, max_points)
         runs, current = [], []

@@ -161,12 +161,26 @@ def test_drift_events_are_marked_where_they_happened(page):
     for chart in ("accuracy-chart", "kappa-chart", "tree-chart"):
         svg = _charts(page)[chart]
         axes = _Axes(svg)
-        marks = [(line.get("data-kind"), axes.data(float(line.get("x1")), 0)[0])
-                 for line in svg.iter(f"{SVG}line") if line.get("class") == "marker"]
+        marks = sorted(((line.get("data-kind"), axes.data(float(line.get("x1")), 0)[0])
+                        for line in svg.iter(f"{SVG}line") if line.get("class") == "marker"),
+                       key=lambda m: m[1])
         assert [k for k, _ in marks] == [e["kind"] for e in EVENTS]
         for (_, x), event in zip(marks, EVENTS):
             assert x == pytest.approx(event["record"], abs=axes.tolerance()[0])
     assert "record 13,000: swap at node 0 (2025-01-01T00:01:00Z): age &lt;= 40.9" in page
+
+
+def test_confirmed_changes_stand_out_from_alarms(page):
+    svg = _charts(page)["accuracy-chart"]
+    style = {line.get("data-kind"): (float(line.get("stroke-width")),
+                                     float(line.get("stroke-opacity")))
+             for line in svg.iter(f"{SVG}line") if line.get("class") == "marker"}
+    assert style["swap"][0] > style["alarm"][0] and style["swap"][1] > style["alarm"][1]
+    kinds = [line.get("data-kind") for line in svg.iter(f"{SVG}line")
+             if line.get("class") == "marker"]
+    assert kinds[-1] == "swap"                      # drawn over the alarms
+    assert "confirmed changes (swaps)" in page and "unconfirmed alarms" in page
+    assert "drift swap (confirmed change)" in page and "drift alarm (unconfirmed)" in page
 
 
 def test_churn_bars_count_the_changes_between_snapshots(run, page):
