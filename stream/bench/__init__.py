@@ -26,6 +26,10 @@ feed-path
 feeds
     Records/s from a file, a Redis stream and an MQTT topic, and the cost of a checkpoint
     every 10,000 records (:mod:`stream.bench.feeds`).
+false-changes
+    Alarms, alternates started and swaps per 1M records of stationary streams (four
+    classification generators and Friedman #1), sapwood's defaults
+    (:mod:`stream.bench.false_changes`).
 rules
     Seconds to join and to compare the rules of a bushy tree (about 80,000 rules from 1M
     rows), and for ``sapwood notes`` and ``sapwood report`` on them
@@ -42,7 +46,7 @@ Modules: ``common`` (bench, results, registry), ``streams`` (the generated strea
 ``learners`` (the learners, drift and regression suites, in memory), ``regression``
 (regression streams and river's regression trees), ``end_to_end`` (the end-to-end and
 memory suites, ``sapwood learn`` as a child process), ``feed_path``, ``feeds`` (live
-feeds), ``rules``
+feeds), ``rules``, ``false_changes``
 (the rule views),
 ``output`` (text, Markdown and JSON of the results), ``command`` (``sapwood bench``).
 """

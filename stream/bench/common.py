@@ -33,6 +33,7 @@ _UNITS: dict[str, Callable[[float], str]] = {
     "%": lambda v: f"{100 * v:.3f}%",
     "MB": lambda v: f"{v:,.1f} MB",
     "s": lambda v: f"{v:,.2f} s",
+    "/1M": lambda v: f"{v:,.1f} per 1M",
     "rmse": lambda v: f"{v:.4f}",
 }
 

@@ -197,7 +197,7 @@ def test_markdown_table_has_one_line_per_row(monkeypatch, tmp_path):
 
 def test_suites_and_streams_are_registries(tmp_path):
     assert list(common.SUITES) == ["learners", "drift", "regression", "end-to-end", "memory",
-                                  "feed-path", "feeds", "rules"]
+                                  "feed-path", "feeds", "rules", "false-changes"]
     assert list(streams.STREAMS) == ["sea", "agrawal", "hyperplane", "rbf10", "rbf100", "led"]
     assert streams.STREAMS["rbf100"].min_ratio == 50 and streams.STREAMS["sea"].min_ratio == 100
     with pytest.raises(SapwoodError, match="suite must be one of"):
@@ -245,3 +245,16 @@ def test_feed_path_suite_learns_every_record_three_ways(tmp_path):
         assert row["learned"] == [3_000, 3_000]       # file and stdin: every record
         assert row["file_ratio"] == pytest.approx(row["file_rps"] / row["memory_rps"])
     assert [c.target for c in result.checks] == [0.8] * 4
+
+
+def test_false_changes_suite_counts_per_million_records(tmp_path):
+    run = Bench(tmp_path, records=4_000, repeats=1, say=lambda message: None)
+    (result,) = run_bench(run, ["false-changes"])
+    assert [r["stream"] for r in result.rows] == ["sea", "agrawal", "rbf10", "led",
+                                                  "friedman (regression)"]
+    for row in result.rows:
+        assert row["swaps"] <= row["starts"] or row["starts"] == 0
+        for value in (row["alarms"], row["starts"], row["swaps"]):
+            count = value * 4_000 / 1_000_000       # back to a count of events
+            assert count >= 0 and count == pytest.approx(round(count))
+    assert [c.target for c in result.checks] == [1.0, 5.0] * 5
