@@ -144,8 +144,9 @@ def closing_report(s: dict) -> str:
                      f"{_number(s.get('kappa'))}, last {s.get('window', 1000):,} records "
                      f"{_percent(s.get('window_accuracy'))}; {rules}")
     if s.get("drift_alarms"):
-        lines.append(f"  drift: {s['drift_alarms']:,} alarms, {s['alternates_started']:,} "
-                     f"alternate subtrees started, {s['swaps']:,} swapped in")
+        lines.append(f"  drift: {s['swaps']:,} confirmed changes (alternates swapped in); "
+                     f"{s['drift_alarms']:,} unconfirmed alarms, {s['alternates_started']:,} "
+                     f"alternate subtrees started")
     if s["quarantined"]:
         lines.append(f"  {s['quarantined']:,} records quarantined in "
                      f"{s['outputs']['quarantine']}")

@@ -62,6 +62,7 @@ class WatchState:
         self.rows: collections.deque = collections.deque(maxlen=history)
         self.events: collections.deque = collections.deque(maxlen=50)
         self.event_count = 0
+        self.swap_count = 0      # confirmed changes among them
         self.entries: list[dict] = []
         self.snapshot: dict | None = None
         self.rules: list[Rule] = []
@@ -108,10 +109,12 @@ class WatchState:
         if self.events_tail.restarted:
             self.events.clear()
             self.event_count = 0
+            self.swap_count = 0
         for event in events:
             check_event(event, f"{self.events_tail.path} line {self.events_tail.line}")
         self.events.extend(events)
         self.event_count += len(events)
+        self.swap_count += sum(event.get("kind") == "swap" for event in events)
         return bool(events) or self.events_tail.restarted
 
 
@@ -220,8 +223,8 @@ def render_frame(state: WatchState, width: int = 100, height: int = 40, now: str
 
     if state.events_tail is not None:
         shown = list(state.events)[-5:]
-        lines.append(f"drift events: {state.event_count} so far" +
-                     (f", latest {len(shown)}:" if shown else ""))
+        lines.append(f"drift events: {state.event_count} so far, {state.swap_count} of them "
+                     f"confirmed (swaps)" + (f"; latest {len(shown)}:" if shown else ""))
         for event in reversed(shown):
             where = event_path_text(event.get("path"))
             lines.append(f"  record {event['record']:>11,}  {event['kind']:<6} node "

@@ -180,6 +180,6 @@ def test_watch_command_once(run, tmp_path):
                                                 _events_file(tmp_path), "--once"])
     assert result.exit_code == 0, result.output
     assert result.output.startswith("sapwood watch | target approved | ")
-    assert "drift events: 3 so far, latest 3:" in result.output
+    assert "drift events: 3 so far, 1 of them confirmed (swaps); latest 3:" in result.output
     refused = CliRunner().invoke(watch_command, [str(run.snapshots), "--every", "0"])
     assert str(refused.exception) == "--every must be a number of seconds > 0, got 0"
