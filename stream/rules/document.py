@@ -42,7 +42,8 @@ _RULE = {  # field -> (what, test); all required but the last three
     "confidence": (_NUMBER, lambda v: _is_number(v)),
     "coverage": (_NUMBER, lambda v: _is_number(v)),
     "records": (_NUMBER, lambda v: _is_number(v)),
-    "class_counts": ("an object of numbers", lambda v: _numbers_object(v)),
+    "class_counts": ("an object of numbers", lambda v: isinstance(v, dict)
+                     and all(_is_number(x) for x in v.values())),
     "scored": ("a whole number", lambda v: _is_int(v)),
     "hits": ("a whole number", lambda v: _is_int(v)),
     "depth": ("a whole number", lambda v: _is_int(v)),
@@ -128,5 +129,5 @@ def _is_int(value: Any) -> bool:
 
 def _numbers_object(value: Any, tables: bool = False) -> bool:
     return isinstance(value, dict) and all(
-        v is None or _is_number(v) or isinstance(v, str) or (tables and isinstance(v, dict))
+        v is None or _is_number(v) or (tables and isinstance(v, dict))
         for v in value.values())
