@@ -15,8 +15,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .common import Bench, Check, Column, SuiteResult, best_of, fmt_count, register
+from .common import Bench, Check, Column, SuiteResult, fmt_count, register
 from .end_to_end import learn_child, warm_child, warm_note
+from .learners import _time_sapwood
 from .streams import STREAMS, make_stream
 
 _TARGET = 0.8
@@ -31,7 +32,6 @@ def feed_path_suite(bench: Bench) -> SuiteResult:
     """In-memory, file, stdin and pandas rates per stream, drift off and ADWIN."""
     import pandas as pd
 
-    from stream.classify.model import TreeClassifier
     from stream.classify.settings import TreeSettings
 
     n = bench.records if bench.records < 200_000 else max(bench.records, 300_000)
@@ -63,12 +63,8 @@ def feed_path_suite(bench: Bench) -> SuiteResult:
         pd.read_csv(path)
         pandas_rps = n / (bench.clock() - start)
         for detector in ("off", "adwin"):
-            def learn_in_memory(detector=detector):
-                model = TreeClassifier(data.names, data.kinds, TreeSettings(detector=detector))
-                model.learn(data.X, data.y, data.classes)
-                return ()
-
-            seconds, _ = best_of(bench.repeats, learn_in_memory, bench.clock)
+            seconds, _, _ = _time_sapwood(data, n, TreeSettings().leaf_model, bench.clock,
+                                          detector, bench.repeats)
             memory_rps = n / seconds
             extra = ["--drift", detector]
             bench.say(f"feed path: {name}, drift {detector}: file and stdin")

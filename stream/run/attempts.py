@@ -19,6 +19,7 @@ from pathlib import Path
 
 from .atomic import write_atomic
 from .checkpoint import rollback_snapshots
+from .snapshots import SnapshotStore
 
 MARKER = ".sapwood-attempt"   # no .json: tools that list snapshot files skip it
 
@@ -84,9 +85,4 @@ def _write_marker(folder: Path, data: dict) -> None:
 
 
 def _highest(folder: Path) -> int:
-    highest = 0
-    for entry in folder.glob("snapshot-*.json"):
-        digits = entry.name[len("snapshot-"):-len(".json")]
-        if digits.isdigit():
-            highest = max(highest, int(digits))
-    return highest
+    return max(SnapshotStore(folder).sequences_on_disk(), default=0)

@@ -191,6 +191,10 @@ class SnapshotStore:
     def _scan(self) -> list[dict]:
         return [self._entry_from_file(s) for s in sorted(self._sequences_present())]
 
+    def sequences_on_disk(self) -> set[int]:
+        """Numbers of the snapshot files in the directory, whatever the index says."""
+        return self._sequences_present()
+
     def _sequences_present(self) -> set[int]:
         found = set()
         for name in os.listdir(self.directory):
