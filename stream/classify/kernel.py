@@ -587,7 +587,7 @@ def start_alternate(t, n: int, record: int) -> int:
     return a
 
 
-@njit
+@njit(inline='always')
 def detect(node_i, node_f, adwin_buckets, adwin_counts, adwin_state, ph_state, cfg_i, cfg_f,
            n: int, error: float):
     """Feed node ``n``'s detector one error and count it in the node's error estimate.
@@ -664,7 +664,7 @@ def react(t, n: int, alarm: bool, before: float, record: int) -> int:
     return n
 
 
-@njit
+@njit(inline='always')
 def watch_path(t, path, m: int, error: float, record: int, stack, top: int):
     """Feed the error of this record's leaf to every node on its path, top down, and act
     on alarms. Alternates met on the way are pushed on ``stack`` (to learn the record
