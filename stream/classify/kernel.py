@@ -55,7 +55,7 @@ GAUSSIAN, HISTOGRAM = 0, 1
 
 # ---------------------------------------------------------------- routing
 
-@njit
+@njit(borrows=True)
 def route(node_i, node_f, child_table, root: int, x, path):
     """Walk from ``root`` to the leaf that scores ``x``, writing the nodes passed into
     ``path``. Returns (leaf, nodes on the path, whether a category with no branch yet
@@ -77,7 +77,7 @@ def route(node_i, node_f, child_table, root: int, x, path):
 
 # ---------------------------------------------------------------- leaf models
 
-@njit
+@njit(borrows=True)
 def argmax_ranked(scores, n_classes: int, rank) -> int:
     """Index of the highest score; ties go to the class whose label sorts first."""
     best = -1
@@ -88,7 +88,7 @@ def argmax_ranked(scores, n_classes: int, rank) -> int:
     return best
 
 
-@njit
+@njit(borrows=True)
 def majority_scores(counts, n: int, n_classes: int, out) -> float:
     """Class shares at leaf ``n`` into ``out``; returns the leaf's total weight."""
     total = 0.0
@@ -99,7 +99,7 @@ def majority_scores(counts, n: int, n_classes: int, out) -> float:
     return total
 
 
-@njit
+@njit(borrows=True)
 def naive_bayes_scores(counts, gauss, cats, fmap, n: int, s: int, x, n_classes: int,
                        out) -> None:
     """Naive Bayes class probabilities at leaf ``n`` (slot ``s``): the class prior times,
@@ -148,7 +148,7 @@ def naive_bayes_scores(counts, gauss, cats, fmap, n: int, s: int, x, n_classes: 
         out[k] /= acc
 
 
-@njit
+@njit(borrows=True)
 def score_leaf(counts, node_i, node_f, gauss, cats, fmap, leaf_model: int, nb_after: int,
                n: int, x, seen: int, rank, mc, nb):
     """Score ``x`` at leaf ``n``: (label, confidence, majority label, naive Bayes label,
@@ -174,7 +174,7 @@ def score_leaf(counts, node_i, node_f, gauss, cats, fmap, leaf_model: int, nb_af
     return mc_label, mc[mc_label], mc_label, nb_label, total, False
 
 
-@njit
+@njit(borrows=True)
 def vote_with_alternates(t, path, m: int, x, seen: int, rank, mc, nb, votes, scratch):
     """(label, confidence) of the main leaf voting with the leaves of the alternates that
     grow beside nodes on its path (Bifet & Gavalda 2009): each leaf's class probabilities
@@ -207,7 +207,7 @@ def vote_with_alternates(t, path, m: int, x, seen: int, rank, mc, nb, votes, scr
 
 # ---------------------------------------------------------------- learning at a leaf
 
-@njit
+@njit(borrows=True)
 def learn_at_leaf(counts, node_i, node_f, gauss, cats, fmap, n: int, x, k: int,
                   w: float, density: bool) -> None:
     """Add record ``x`` of class ``k`` to leaf ``n``'s counts and, if active, its Gaussian
@@ -239,7 +239,7 @@ def learn_histograms(edges, hcounts, buf, meta, fmap, s: int, x, k: int, w: floa
             histogram_update(edges, hcounts, buf, meta, s, fmap[f, FM_LOCAL], k, v, w)
 
 
-@njit
+@njit(borrows=True)
 def note_categories(fmap, state, x) -> None:
     """Remember the highest category code learned per categorical feature."""
     for f in range(x.shape[0]):
@@ -253,7 +253,7 @@ def note_categories(fmap, state, x) -> None:
 
 # ---------------------------------------------------------------- capacity and memory
 
-@njit
+@njit(borrows=True)
 def leaf_bytes(state, n_numeric: int, n_cat: int, bins: int, buffer: int) -> float:
     """Bytes of statistics an active leaf holds at the class and category counts seen so
     far (``bins`` = 0 without the histogram split statistic)."""
@@ -300,7 +300,7 @@ def slots_needed(t) -> int:
     return max(t.state[S_ACTIVE], allowed) + spare_slots(t.state, watches(t))
 
 
-@njit
+@njit(borrows=True)
 def watches(t) -> bool:
     """Whether drift detection is on (alternates may grow)."""
     return t.cfg_i[C_DETECTOR] != NO_DETECTOR
@@ -559,7 +559,7 @@ def attempt_split(t, n: int, record: int) -> None:
 
 # ---------------------------------------------------------------- drift: alternates
 
-@njit
+@njit(borrows=True)
 def error_rate(node_f, n: int) -> float:
     """Node ``n``'s error rate since its estimate was last reset (0 before any record)."""
     count = node_f[n, ERR_N]
@@ -587,7 +587,7 @@ def start_alternate(t, n: int, record: int) -> int:
     return a
 
 
-@njit(inline='always')
+@njit(borrows=True)
 def detect(node_i, node_f, adwin_buckets, adwin_counts, adwin_state, ph_state, cfg_i, cfg_f,
            n: int, error: float):
     """Feed node ``n``'s detector one error and count it in the node's error estimate.
@@ -664,7 +664,7 @@ def react(t, n: int, alarm: bool, before: float, record: int) -> int:
     return n
 
 
-@njit(inline='always')
+@njit
 def watch_path(t, path, m: int, error: float, record: int, stack, top: int):
     """Feed the error of this record's leaf to every node on its path, top down, and act
     on alarms. Alternates met on the way are pushed on ``stack`` (to learn the record

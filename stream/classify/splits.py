@@ -34,7 +34,7 @@ _SQRT2 = math.sqrt(2.0)
 
 # ---------------------------------------------------------------- Gaussian split statistic
 
-@njit
+@njit(borrows=True)
 def gaussian_update(gauss: np.ndarray, s: int, j: int, k: int, v: float, w: float,
                     density: bool) -> None:
     """Add value ``v`` of class ``k`` with weight ``w`` to numeric feature ``j``; with
@@ -67,14 +67,14 @@ def gaussian_update(gauss: np.ndarray, s: int, j: int, k: int, v: float, w: floa
         gauss[s, j, k, G_LLB] = 0.0
 
 
-@njit
+@njit(borrows=True)
 def gaussian_log_density(gauss: np.ndarray, s: int, j: int, k: int, v: float) -> float:
     """log N(v; mean, var) of class ``k``; 0 while the variance is undefined."""
     d = v - gauss[s, j, k, G_MEAN]
     return d * d * gauss[s, j, k, G_LLA] + gauss[s, j, k, G_LLB]
 
 
-@njit
+@njit(borrows=True)
 def gaussian_pooled(gauss: np.ndarray, s: int, j: int, n_classes: int):
     """(mean, variance) of feature ``j`` over every class at slot ``s``; variance 0 when
     fewer than two values or no spread."""
@@ -93,7 +93,7 @@ def gaussian_pooled(gauss: np.ndarray, s: int, j: int, n_classes: int):
     return mean, max(m2 / (total - 1.0), 0.0)
 
 
-@njit
+@njit(borrows=True)
 def gaussian_fallback_density(gauss: np.ndarray, s: int, j: int, k: int, v: float,
                               pooled_mean: float, pooled_var: float) -> float:
     """log density of ``v`` for a class without spread on feature ``j``: its own mean
@@ -247,14 +247,14 @@ def histogram_post_at(edges: np.ndarray, counts: np.ndarray, meta: np.ndarray, s
 
 # ---------------------------------------------------------------- category statistics
 
-@njit
+@njit(borrows=True)
 def category_update(cats: np.ndarray, s: int, j: int, k: int, code: int, w: float) -> None:
     """Add category ``code`` of class ``k`` to categorical feature ``j``."""
     cats[s, j, k, 0] += w
     cats[s, j, k, 1 + code] += w
 
 
-@njit
+@njit(borrows=True)
 def category_log_likelihood(cats: np.ndarray, s: int, j: int, k: int, code: int,
                             n_codes: int) -> float:
     """log P(code | class k), Laplace-smoothed over the ``n_codes`` codes seen so far."""

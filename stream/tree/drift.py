@@ -58,7 +58,7 @@ def page_hinkley_table(n: int) -> np.ndarray:
     return table
 
 
-@njit(inline='always')
+@njit(borrows=True)
 def adwin_reset(buckets, counts, state, d: int) -> None:
     """Forget everything detector ``d`` has seen."""
     buckets[d] = 0.0
@@ -67,7 +67,7 @@ def adwin_reset(buckets, counts, state, d: int) -> None:
     state[d, A_LEVELS] = 1.0
 
 
-@njit(inline='always')
+@njit(inline='always', borrows=True)
 def _adwin_delete_oldest(buckets, counts, state, d: int) -> float:
     """Drop the oldest bucket; returns its size."""
     level = int(state[d, A_LEVELS]) - 1
@@ -92,7 +92,7 @@ def _adwin_delete_oldest(buckets, counts, state, d: int) -> float:
     return n
 
 
-@njit(inline='always')
+@njit(inline='always', borrows=True)
 def _adwin_compress(buckets, counts, state, d: int, max_buckets: int) -> None:
     level = 0
     while counts[d, level] == max_buckets + 1:
@@ -124,7 +124,7 @@ def _adwin_compress(buckets, counts, state, d: int, max_buckets: int) -> None:
         level += 1
 
 
-@njit(inline='always')
+@njit(inline='always', borrows=True)
 def _adwin_cut(n0: float, n1: float, delta_mean: float, min_len: int, variance: float,
                delta_prime: float) -> bool:
     m_recip = 1.0 / (n0 - min_len + 1) + 1.0 / (n1 - min_len + 1)
@@ -133,7 +133,7 @@ def _adwin_cut(n0: float, n1: float, delta_mean: float, min_len: int, variance: 
     return abs(delta_mean) > epsilon
 
 
-@njit(inline='always')
+@njit(inline='always', borrows=True)
 def _adwin_detect(buckets, counts, state, d: int, delta: float, clock: int, min_len: int,
                   grace: int) -> bool:
     detected = False
@@ -175,7 +175,7 @@ def _adwin_detect(buckets, counts, state, d: int, delta: float, clock: int, min_
     return detected
 
 
-@njit(inline='always')
+@njit(borrows=True)
 def adwin_update(buckets, counts, state, d: int, value: float, delta: float, clock: int,
                  max_buckets: int, min_len: int, grace: int) -> bool:
     """Add ``value`` to detector ``d``; True when it raises an alarm on this value."""
@@ -198,14 +198,14 @@ def adwin_update(buckets, counts, state, d: int, value: float, delta: float, clo
     return alarm
 
 
-@njit(inline='always')
+@njit(borrows=True)
 def adwin_mean(state, d: int) -> float:
     """Mean of the values in detector ``d``'s window (0 when empty)."""
     width = state[d, A_WIDTH]
     return state[d, A_TOTAL] / width if width > 0 else 0.0
 
 
-@njit(inline='always')
+@njit(borrows=True)
 def page_hinkley_reset(ph, d: int) -> None:
     """Forget everything detector ``d`` has seen."""
     ph[d] = 0.0
@@ -213,7 +213,7 @@ def page_hinkley_reset(ph, d: int) -> None:
     ph[d, P_MAX_DOWN] = -1.0
 
 
-@njit(inline='always')
+@njit(borrows=True)
 def page_hinkley_update(ph, d: int, value: float, min_instances: int, delta: float,
                         threshold: float, alpha: float, mode: int) -> bool:
     """Add ``value`` to detector ``d``; True on an alarm. ``mode``: 0 both, 1 up, 2 down."""
@@ -243,7 +243,7 @@ def page_hinkley_update(ph, d: int, value: float, min_instances: int, delta: flo
     return alarm
 
 
-@njit
+@njit(borrows=True)
 def page_hinkley_rose(ph, d: int, threshold: float) -> bool:
     """After an alarm: whether the upward test fired (the mean rose)."""
     return ph[d, P_UP] - ph[d, P_MIN_UP] > threshold

@@ -43,7 +43,7 @@ from .layout import (ALT, ALT_OF, BRANCH, CHILD_START, CREATED, DEAD, DEPTH, DET
 
 # ---------------------------------------------------------------- routing
 
-@njit
+@njit(borrows=True)
 def heaviest_child(node_i, node_f, child_table, n: int) -> int:
     """The child that has seen the most weight (ties: the first); missing values go there."""
     best = -1
