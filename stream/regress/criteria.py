@@ -33,7 +33,7 @@ VARIANCE = 0
 DEVIATION = 1
 
 
-@njit
+@njit(borrows=True)
 def stats_add(dest: np.ndarray, src: np.ndarray) -> None:
     """``dest`` <- ``dest`` merged with ``src`` (both (count, mean, M2))."""
     n2 = src[0]
@@ -47,7 +47,7 @@ def stats_add(dest: np.ndarray, src: np.ndarray) -> None:
     dest[0] = n
 
 
-@njit
+@njit(borrows=True)
 def stats_sub(total: np.ndarray, part: np.ndarray, out: np.ndarray) -> None:
     """``out`` <- the records of ``total`` that are not in ``part``."""
     n = total[0]
@@ -66,7 +66,7 @@ def stats_sub(total: np.ndarray, part: np.ndarray, out: np.ndarray) -> None:
     out[2] = m2 if m2 > 0.0 else 0.0
 
 
-@njit
+@njit(borrows=True)
 def variance(st: np.ndarray) -> float:
     """Sample variance of (count, mean, M2); 0 below two records."""
     if st[0] > 1.0:
@@ -74,20 +74,20 @@ def variance(st: np.ndarray) -> float:
     return 0.0
 
 
-@njit
+@njit(borrows=True)
 def deviation(st: np.ndarray) -> float:
     """Sample standard deviation of (count, mean, M2); 0 below two records."""
     return math.sqrt(variance(st))
 
 
-@njit
+@njit(borrows=True)
 def _spread(criterion: int, st: np.ndarray) -> float:
     if criterion == DEVIATION:
         return deviation(st)
     return variance(st)
 
 
-@njit
+@njit(borrows=True)
 def split_merit(criterion: int, pre: np.ndarray, left: np.ndarray, right: np.ndarray,
                 min_records: float) -> float:
     """Reduction of the target's spread by splitting ``pre`` into ``left`` and ``right``."""
@@ -98,7 +98,7 @@ def split_merit(criterion: int, pre: np.ndarray, left: np.ndarray, right: np.nda
         - (right[0] / n) * _spread(criterion, right)
 
 
-@njit
+@njit(borrows=True)
 def multiway_merit(criterion: int, pre: np.ndarray, branches: np.ndarray, rows: int,
                    min_records: float) -> float:
     """Reduction of spread by splitting ``pre`` into the first ``rows`` rows of ``branches``."""
@@ -111,7 +111,7 @@ def multiway_merit(criterion: int, pre: np.ndarray, branches: np.ndarray, rows: 
     return merit
 
 
-@njit
+@njit(borrows=True)
 def split_confident(best: float, second: float, n: float, delta: float,
                     tau: float) -> bool:
     """Whether the best candidate is reliably better than the second (FIMT-DD's ratio test)."""

@@ -68,13 +68,13 @@ SCALE_UNITS = 3.0
 SWAP, KEEP, DROP = 1, 0, -1
 
 
-@njit
+@njit(borrows=True)
 def error_unit(err_scale) -> float:
     """The absolute error that normalises to 1 (0 while the target has shown no spread)."""
     return SCALE_UNITS * err_scale[ES_MAD]
 
 
-@njit
+@njit(borrows=True)
 def normalised_error(err: float, unit: float) -> float:
     """``|err| / unit`` clipped at 1; while ``unit`` is 0, 0 for an exact prediction and
     1 otherwise."""
@@ -85,7 +85,7 @@ def normalised_error(err: float, unit: float) -> float:
     return 0.0 if a == 0.0 else 1.0
 
 
-@njit
+@njit(borrows=True)
 def error_scale_update(err_scale, y: float, fading: float) -> None:
     """Add target ``y`` to the faded mean and mean absolute deviation (the deviation of
     ``y`` from the mean before it). Faded sums S <- x + a S, weights N <- 1 + a N
@@ -101,7 +101,7 @@ def error_scale_update(err_scale, y: float, fading: float) -> None:
     err_scale[ES_MEAN] += (y - err_scale[ES_MEAN]) / w
 
 
-@njit
+@njit(borrows=True)
 def error_mean(node_f, n: int) -> float:
     """Node ``n``'s mean normalised absolute error since its estimate was reset (0 before
     any record)."""
@@ -109,7 +109,7 @@ def error_mean(node_f, n: int) -> float:
     return node_f[n, ERR_SUM] / count if count > 0.0 else 0.0
 
 
-@njit
+@njit(borrows=True)
 def error_variance(node_f, n: int) -> float:
     """Sample variance of the same errors (0 below two records)."""
     count = node_f[n, ERR_N]
@@ -120,7 +120,7 @@ def error_variance(node_f, n: int) -> float:
     return v if v > 0.0 else 0.0
 
 
-@njit
+@njit(borrows=True)
 def reset_error(node_f, n: int) -> None:
     """Start node ``n``'s error estimate afresh."""
     node_f[n, ERR_SUM] = 0.0
@@ -128,14 +128,14 @@ def reset_error(node_f, n: int) -> None:
     node_f[n, ERR_N] = 0.0
 
 
-@njit
+@njit(borrows=True)
 def swap_bound(v_node: float, n_node: float, v_alt: float, n_alt: float,
                significance: float) -> float:
     """The margin sqrt(2 ln(2 / alpha) (v_node / n_node + v_alt / n_alt)) of the swap test."""
     return math.sqrt(2.0 * math.log(2.0 / significance) * (v_node / n_node + v_alt / n_alt))
 
 
-@njit
+@njit(borrows=True)
 def swap_verdict(node_f, n: int, a: int, after: int, significance: float):
     """Compare node ``n`` with its alternate ``a``: (SWAP, KEEP or DROP, the node's mean
     normalised error, the alternate's). KEEP until both have more than ``after``

@@ -67,7 +67,7 @@ from .criteria import split_confident
 from .drift import error_scale_update, error_unit, normalised_error
 from .nodes import (activate, activate_if_room, enforce_leaf_cap, fresh_detector, leaf_cap,
                     new_leaf, react)
-from .splits import category_best, observe, quantile_best
+from .splits import category_best, observe, quantile_best, set_filled_edges
 from .tables import (ABS_ERROR, ALT, CHILD_START, DEPTH, DET, EQUALS, ERR_LINEAR, ERR_MEAN,
                      ERR_N, ERR_SQ, ERR_SUM, FEATURE, FM_KIND, FM_LOCAL, FM_SEEN, KIND,
                      LAST_ATTEMPT, LEAF, MERIT, MULTIWAY, N_CHILDREN, NUMERIC, OBSERVED,
@@ -97,7 +97,7 @@ whose last hundred records erred by 0.1 on average about 50."""
 
 # ---------------------------------------------------------------- routing
 
-@njit
+@njit(borrows=True)
 def route(node_i, node_f, child_table, X, i: int, root: int, count: bool, path):
     """The leaf under ``root`` that scores record ``X[i]``: (leaf, nodes on the path, whether
     a category with no branch yet sent it along the heaviest child on the way). The
@@ -140,7 +140,7 @@ def route(node_i, node_f, child_table, X, i: int, root: int, count: bool, path):
     return n, m + 1, detoured
 
 
-@njit
+@njit(borrows=True)
 def add_path_weight(node_i, node_f, n: int, root: int, w: float) -> None:
     """Add ``w`` to the weight of ``n`` and of every node above it up to ``root``."""
     while n >= 0:
@@ -183,7 +183,7 @@ def numeric_columns(fmap) -> np.ndarray:
     return cols
 
 
-@njit
+@njit(borrows=True)
 def scale_update(scale, cols, X, i: int, y: float) -> None:
     """Add record (``X[i]``, ``y``) to the tree-wide statistics (missing values skipped)
     and refresh the deviations."""
@@ -210,7 +210,7 @@ def scale_update(scale, cols, X, i: int, y: float) -> None:
 
 # ---------------------------------------------------------------- leaf models
 
-@njit
+@njit(borrows=True)
 def linear_predict(lin, lin_x, scale, cols, n: int, X, i: int, z) -> float:
     """Standardise record ``X[i]`` into ``z`` and return node ``n``'s standardised
     prediction b + w . z.
@@ -231,7 +231,7 @@ def linear_predict(lin, lin_x, scale, cols, n: int, X, i: int, z) -> float:
     return t
 
 
-@njit
+@njit(borrows=True)
 def linear_learn(lin, lin_x, scale, cols, n: int, X, i: int, z, g, y: float,
                  t_hat: float, rate: float) -> None:
     """One normalised least-mean-squares step of node ``n``'s model towards ``y``, taken
@@ -286,7 +286,7 @@ def linear_learn(lin, lin_x, scale, cols, n: int, X, i: int, z, g, y: float,
             lin_x[n, j, 0] = cnt
 
 
-@njit
+@njit(borrows=True)
 def note_categories(fmap, state, X, i: int) -> None:
     """Remember the highest category code learned per categorical feature."""
     for f in range(fmap.shape[0]):
@@ -300,7 +300,7 @@ def note_categories(fmap, state, X, i: int) -> None:
 
 # ---------------------------------------------------------------- one leaf, in general form
 
-@njit
+@njit(borrows=True)
 def leaf_predict(t, n: int, X, i: int, z, cols):
     """Leaf ``n``'s predictions for ``X[i]``: (the one it gives, its mean's, its linear
     model's, the standardised linear prediction). Leaves ``X[i]`` standardised in ``z``."""
@@ -319,7 +319,7 @@ def leaf_predict(t, n: int, X, i: int, z, cols):
     return p, mean_pred, linear_pred, t_hat
 
 
-@njit
+@njit(borrows=True)
 def score_at_leaf(node_f, n: int, target: float, p: float, mean_pred: float,
                   linear_pred: float, adaptive: bool, decay: float) -> None:
     """Count leaf ``n``'s error on this record, and its models' faded errors."""
@@ -357,7 +357,9 @@ def learn_leaf(t, n: int, root: int, X, i: int, target: float, record: int, deto
     s = node_i[n, SLOT]
     if s >= 0:
         node_f[n, OBSERVED] += 1.0
-        observe(t.q_edges, t.q_stats, t.q_buf, t.q_meta, t.c_stats, t.fmap, s, X, i, target)
+        if observe(t.q_edges, t.q_stats, t.q_buf, t.q_meta, t.c_stats, t.fmap, s, X, i,
+                   target):
+            set_filled_edges(t.q_edges, t.q_stats, t.q_buf, t.q_meta, t.fmap, s)
     if linear:
         linear_learn(t.lin, t.lin_x, t.scale, cols, n, X, i, z, g, target, t_hat,
                      t.cfg_f[RF_RATE])
@@ -433,14 +435,14 @@ def learn_watched(t, root: int, X, i: int, target: float, record: int, unit: flo
     return top
 
 
-@njit
+@njit(borrows=True)
 def blend_weight(node_f, n: int) -> float:
     """Inverse of leaf ``n``'s recent mean squared normalised error, smoothed by
     ``PRIOR_SQ_ERROR``."""
     return (node_f[n, ERR_N] + 1.0) / (node_f[n, ERR_SQ] + PRIOR_SQ_ERROR)
 
 
-@njit
+@njit(borrows=True)
 def blend_with_alternates(t, path, m: int, X, i: int, p: float, scratch, z, cols) -> float:
     """The prediction of the main leaf (``path[m - 1]``, predicting ``p``) blended with
     those of the leaves that alternates growing beside nodes on its path reach, each
@@ -461,7 +463,7 @@ def blend_with_alternates(t, path, m: int, X, i: int, p: float, scratch, z, cols
     return acc / total
 
 
-@njit
+@njit(borrows=True)
 def predict_one(t, X, i: int, path, scratch, z, cols):
     """(prediction, leaf) for ``X[i]`` without learning: the main leaf's, blended with
     alternates when any grow on its path."""
@@ -774,7 +776,9 @@ def learn_batch(t, X, y, start: int, pred, leaf, plain: bool) -> int:
                 s = node_i[n, SLOT]
                 if s >= 0:
                     node_f[n, OBSERVED] += 1.0
-                    observe(q_edges, q_stats, q_buf, q_meta, c_stats, fmap, s, X, i, target)
+                    if observe(q_edges, q_stats, q_buf, q_meta, c_stats, fmap, s, X, i,
+                               target):
+                        set_filled_edges(q_edges, q_stats, q_buf, q_meta, fmap, s)
                 if linear:
                     linear_learn(lin, lin_x, scale, cols, n, X, i, z, g, target, t_hat, rate)
                 if s >= 0:

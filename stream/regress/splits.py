@@ -45,7 +45,7 @@ from .criteria import multiway_merit, split_merit, stats_add
 from .tables import FM_KIND, FM_LOCAL, Q_NBUF, Q_NEDGES, Q_READY, ST_M2, ST_MEAN, ST_N
 
 
-@njit
+@njit(borrows=True)
 def welford(stats: np.ndarray, s: int, j: int, b: int, y: float, w: float) -> None:
     """Add target ``y`` with weight ``w`` to the (count, mean, M2) of ``stats[s, j, b]``."""
     # indexed element by element: views would cost reference counting
@@ -57,18 +57,20 @@ def welford(stats: np.ndarray, s: int, j: int, b: int, y: float, w: float) -> No
     stats[s, j, b, ST_N] = n
 
 
-@njit
+@njit(borrows=True)
 def observe(edges: np.ndarray, stats: np.ndarray, buf: np.ndarray, meta: np.ndarray,
             cstats: np.ndarray, fmap: np.ndarray, s: int, X: np.ndarray, i: int,
-            y: float) -> None:
+            y: float) -> bool:
     """Add record ``X[i]`` with target ``y`` to every split statistic of slot ``s``.
 
     Numeric values are buffered until the edges are set, then counted in their bin;
-    category codes update their own statistics; missing values are skipped.
+    category codes update their own statistics; missing values are skipped. Returns
+    True when a buffer has just filled: the caller then sets its edges
+    (:func:`set_filled_edges`, which sorts, so it cannot be called from here).
     """
-    # One call per record, written out in full: on this path every call that passes
-    # arrays pays for reference counting, which cost more than the work itself when
-    # the bin search and the update were separate functions called per feature.
+    filled = False
+    # One call per record, written out in full (and compiled without reference
+    # counting): per-feature calls that pass arrays cost more than the work itself.
     for f in range(fmap.shape[0]):
         v = X[i, f]
         if math.isnan(v):
@@ -89,7 +91,7 @@ def observe(edges: np.ndarray, stats: np.ndarray, buf: np.ndarray, meta: np.ndar
             buf[s, j, k, 1] = y
             meta[s, j, Q_NBUF] = k + 1
             if k + 1 == buf.shape[2]:
-                quantile_set_edges(edges, stats, buf, meta, s, j)
+                filled = True
             continue
         # lower bound search over the edges, in steps that compile to conditional moves:
         # the comparisons are unpredictable and mispredictions cost more than the search
@@ -108,9 +110,21 @@ def observe(edges: np.ndarray, stats: np.ndarray, buf: np.ndarray, meta: np.ndar
         stats[s, j, b, ST_M2] += (y - mean_old) * (y - mean)
         stats[s, j, b, ST_MEAN] = mean
         stats[s, j, b, ST_N] = cnt
+    return filled
 
 
 @njit
+def set_filled_edges(edges: np.ndarray, stats: np.ndarray, buf: np.ndarray, meta: np.ndarray,
+                     fmap: np.ndarray, s: int) -> None:
+    """Set the edges of every numeric feature of slot ``s`` whose buffer is full."""
+    for f in range(fmap.shape[0]):
+        j = fmap[f, FM_LOCAL]
+        if fmap[f, FM_KIND] == 0 and meta[s, j, Q_READY] == 0 \
+                and meta[s, j, Q_NBUF] == buf.shape[2]:
+            quantile_set_edges(edges, stats, buf, meta, s, j)
+
+
+@njit(borrows=True)
 def bin_of(edges: np.ndarray, s: int, j: int, n_edges: int, v: float) -> int:
     """Number of edges below ``v``: the bin holding ``v`` (``v`` == edge goes left)."""
     b = 0

@@ -29,7 +29,8 @@ from stream.errors import ConfigError, ModelFileError
 from stream.regress.criteria import split_confident, split_merit, stats_add, stats_sub
 from stream.regress.model import TreeRegressor
 from stream.regress.settings import RegressionSettings
-from stream.regress.splits import category_best, observe, quantile_best, quantile_set_edges
+from stream.regress.splits import (category_best, observe, quantile_best, quantile_set_edges,
+                                   set_filled_edges)
 from stream.regress.tables import (CREATED, FEATURE, KIND, LEAF, MULTIWAY, NUMERIC,
                                    Q_NEDGES, S_NODES, SC_MEAN, SC_SD, THRESHOLD, allocate)
 from stream.rules.regress import (Consequent, format_consequent, format_value,
@@ -364,7 +365,8 @@ def test_quantile_split_statistic_holds_exact_bin_statistics():
     y = rng.normal(0, 1, 500) + x
     X = x[:, None]
     for i in range(500):
-        observe(t.q_edges, t.q_stats, t.q_buf, t.q_meta, t.c_stats, t.fmap, 0, X, i, y[i])
+        if observe(t.q_edges, t.q_stats, t.q_buf, t.q_meta, t.c_stats, t.fmap, 0, X, i, y[i]):
+            set_filled_edges(t.q_edges, t.q_stats, t.q_buf, t.q_meta, t.fmap, 0)
     ne = int(t.q_meta[0, 0, Q_NEDGES])
     edges = t.q_edges[0, 0, :ne]
     assert ne == 7 and np.all(np.diff(edges) > 0)
