@@ -144,13 +144,18 @@ class _Codebook:
         row never creates a code.
         """
         lut = np.full(len(labels) + 1, -1, dtype=np.int64)
-        kept = codes[keep]
-        for unique in pd.unique(kept[kept >= 0]):
+        everything = bool(keep.all())
+        if everything:    # factorize_labels numbers values in the order they first appear
+            firsts = range(len(labels))
+        else:
+            kept = codes[keep]
+            firsts = pd.unique(kept[kept >= 0])
+        for unique in firsts:
             label = labels[unique]
             if label is not None:
                 lut[unique] = self.add(label)
         mapped = lut[codes]  # -1 indexes the trailing -1
-        present = mapped[keep]
+        present = mapped if everything else mapped[keep]
         present = present[present >= 0]
         if self.first_pooled is not None:
             in_pool = np.flatnonzero(present == len(self.labels))
@@ -159,6 +164,91 @@ class _Codebook:
             self.pooled += int(in_pool.size)
         self.rows += present.size
         return mapped
+
+
+@dataclasses.dataclass
+class PreparedColumns:
+    """A batch's columns read for one schema, before any code is given: what
+    :meth:`Encoder.encode` can do without the encoder's state, so that a reading thread
+    can do it while the learner works on the previous batch."""
+
+    batch: RawBatch
+    schema: Schema
+    scoring: bool
+    X: np.ndarray                     # numeric features filled in, category columns not
+    lines: np.ndarray
+    problems: list[tuple[np.ndarray, str, str, Any]]
+    bad_rows: np.ndarray
+    pending: list[tuple[int, str, np.ndarray, list[str | None]]]   # category columns
+    raw_target: Any
+    target_codes: np.ndarray | None   # classification: codes of this batch's labels
+    target_labels: list[str | None] | None
+    y_values: np.ndarray | None       # regression
+    times: np.ndarray | None
+    ids: np.ndarray | None
+    unknown_present: dict[str, int]   # values present per field outside the schema
+
+
+def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> PreparedColumns:
+    """Read ``batch``'s columns for ``schema`` (numbers parsed, labels factorised, bad
+    values found); pure, so it may run on another thread. See :meth:`Encoder.encode`."""
+    frame = batch.frame
+    n = len(frame)
+    problems: list[tuple[np.ndarray, str, str, Any]] = []
+    bad_rows = np.zeros(n, dtype=bool)
+
+    def report(mask: np.ndarray, field: str, reason: str, raw: Any) -> None:
+        nonlocal bad_rows
+        if mask.any():
+            problems.append((mask, field, reason, raw))
+            bad_rows = bad_rows | mask
+
+    def column(name: str) -> pd.Series | np.ndarray:
+        if name in frame.columns:
+            return frame[name]
+        return np.full(n, np.nan)  # a key no record of this batch carried
+
+    X = np.empty((n, len(schema.feature_names)))
+    pending: list[tuple[int, str, np.ndarray, list[str | None]]] = []
+    for j, (name, kind) in enumerate(zip(schema.feature_names, schema.feature_kinds)):
+        raw = column(name)
+        if kind == "numeric":
+            numbers, bad = parse_numbers(raw)
+            report(bad, name, _REASON_NUMBER, raw)
+            _report_unlearnable(numbers, report, name, raw)
+            X[:, j] = numbers
+        else:
+            codes, labels = factorize_labels(raw)
+            pending.append((j, name, codes, labels))
+
+    target = schema.target
+    raw_target = column(target)
+    target_codes = target_labels = y_values = None
+    if schema.task == "classification":
+        target_codes, target_labels = factorize_labels(raw_target)
+        if not scoring:
+            report(target_codes < 0, target, _REASON_NO_TARGET, None)
+    else:
+        y_values, bad = parse_numbers(raw_target)
+        if scoring:
+            y_values = np.where(np.abs(y_values) > VALUE_LIMIT, np.nan, y_values)
+        else:
+            report(bad, target, _REASON_NUMBER, raw_target)
+            _report_unlearnable(y_values, report, target, raw_target)
+            report(np.isnan(y_values) & ~bad, target, _REASON_NO_TARGET, None)
+
+    times = None
+    if schema.time_field is not None:
+        raw_time = column(schema.time_field)
+        times, bad = parse_times(raw_time)
+        report(bad, schema.time_field, _REASON_TIME, raw_time)
+    ids = None if schema.id_field is None else label_texts(column(schema.id_field))
+    known = {field.name for field in schema.fields}
+    unknown_present = {name: int(np.count_nonzero(~missing_mask(frame[name])))
+                       for name in frame.columns if name not in known}
+    return PreparedColumns(batch, schema, scoring, X, np.asarray(batch.lines, dtype=np.int64),
+                           problems, bad_rows, pending, raw_target, target_codes,
+                           target_labels, y_values, times, ids, unknown_present)
 
 
 class Encoder:
@@ -188,7 +278,6 @@ class Encoder:
         self._books = {name: _Codebook(cap=category_cap) for name, kind
                        in zip(schema.feature_names, schema.feature_kinds) if kind == "category"}
         self._classes = _Codebook(cap=class_cap)
-        self._known = {field.name for field in schema.fields}
         self.unknown_fields: dict[str, int] = {}
 
     @property
@@ -215,19 +304,24 @@ class Encoder:
                        "after": book.reached_at}
                 for name, book in self._books.items() if book.first_pooled is not None}
 
-    def encode(self, batch: RawBatch, scoring: bool = False) -> EncodedBatch:
+    def encode(self, batch: RawBatch, scoring: bool = False,
+               prepared: "PreparedColumns | None" = None) -> EncodedBatch:
         """Encode one batch; the batch and its frame are left untouched.
 
         With ``scoring`` the target is optional (records are predicted, not learned): a
         missing or unreadable target gives y = -1 (classification) or NaN (regression)
-        instead of a reject.
+        instead of a reject. ``prepared``: the batch's columns already read by
+        :func:`prepare_columns` (on a reading thread) for this schema and ``scoring``;
+        only the codes, which depend on what came before, are given here.
         """
+        if prepared is None or prepared.batch is not batch or prepared.schema is not \
+                self.schema or prepared.scoring != scoring:
+            prepared = prepare_columns(self.schema, batch, scoring)
         schema = self.schema
-        frame = batch.frame
-        n = len(frame)
-        lines = np.asarray(batch.lines, dtype=np.int64)
-        problems: list[tuple[np.ndarray, str, str, Any]] = []
-        bad_rows = np.zeros(n, dtype=bool)
+        X, lines, problems = prepared.X, prepared.lines, list(prepared.problems)
+        bad_rows = prepared.bad_rows
+        target = schema.target
+        raw_target = prepared.raw_target
 
         def report(mask: np.ndarray, field: str, reason: str, raw: Any) -> None:
             nonlocal bad_rows
@@ -235,48 +329,9 @@ class Encoder:
                 problems.append((mask, field, reason, raw))
                 bad_rows = bad_rows | mask
 
-        def column(name: str) -> pd.Series | np.ndarray:
-            if name in frame.columns:
-                return frame[name]
-            return np.full(n, np.nan)  # a key no record of this batch carried
-
-        X = np.empty((n, len(schema.feature_names)))
-        pending: list[tuple[int, str, np.ndarray, list[str | None]]] = []
-        for j, (name, kind) in enumerate(zip(schema.feature_names, schema.feature_kinds)):
-            raw = column(name)
-            if kind == "numeric":
-                numbers, bad = parse_numbers(raw)
-                report(bad, name, _REASON_NUMBER, raw)
-                _report_unlearnable(numbers, report, name, raw)
-                X[:, j] = numbers
-            else:
-                codes, labels = factorize_labels(raw)
-                pending.append((j, name, codes, labels))
-
-        target = schema.target
-        raw_target = column(target)
-        if schema.task == "classification":
-            target_codes, target_labels = factorize_labels(raw_target)
-            if not scoring:
-                report(target_codes < 0, target, _REASON_NO_TARGET, None)
-        else:
-            y_values, bad = parse_numbers(raw_target)
-            if scoring:
-                y_values = np.where(np.abs(y_values) > VALUE_LIMIT, np.nan, y_values)
-            else:
-                report(bad, target, _REASON_NUMBER, raw_target)
-                _report_unlearnable(y_values, report, target, raw_target)
-                report(np.isnan(y_values) & ~bad, target, _REASON_NO_TARGET, None)
-
-        times = None
-        if schema.time_field is not None:
-            raw_time = column(schema.time_field)
-            times, bad = parse_times(raw_time)
-            report(bad, schema.time_field, _REASON_TIME, raw_time)
-
         keep = ~bad_rows
         if schema.task == "classification":
-            y_codes = self._classes.encode(target_codes, target_labels, keep)
+            y_codes = self._classes.encode(prepared.target_codes, prepared.target_labels, keep)
             beyond = keep & (y_codes >= self._classes.cap)
             if scoring:       # a label the model cannot know is as good as none
                 y_codes = np.where(beyond, -1, y_codes)
@@ -286,17 +341,16 @@ class Encoder:
             keep = ~bad_rows
             y = y_codes[keep].astype(np.int32)
         else:
-            y = y_values[keep]
-        for j, name, codes, labels in pending:
+            y = prepared.y_values[keep]
+        for j, name, codes, labels in prepared.pending:
             mapped = self._books[name].encode(codes, labels, keep).astype(np.float64)
             mapped[mapped < 0] = np.nan
             X[:, j] = mapped
 
-        ids = None
-        if schema.id_field is not None:
-            ids = label_texts(column(schema.id_field))[keep]
-
-        self._count_unknown(frame)
+        ids = None if prepared.ids is None else prepared.ids[keep]
+        for name, present in prepared.unknown_present.items():
+            self.unknown_fields[name] = self.unknown_fields.get(name, 0) + present
+        times = prepared.times
         everything = not bad_rows.any()
         return EncodedBatch(
             X=X if everything else X[keep],
@@ -318,12 +372,6 @@ class Encoder:
                 found.append((row, order, Reject(origin, int(lines[row]), field, value, reason)))
         found.sort(key=lambda item: item[:2])
         return [reject for _, _, reject in found]
-
-    def _count_unknown(self, frame: pd.DataFrame) -> None:
-        for name in frame.columns:
-            if name not in self._known:
-                present = int(np.count_nonzero(~missing_mask(frame[name])))
-                self.unknown_fields[name] = self.unknown_fields.get(name, 0) + present
 
     # -- saving and restoring ----------------------------------------------------------
 

@@ -24,6 +24,7 @@ CLI exits 0). A second signal interrupts at once.
 
 from __future__ import annotations
 
+import functools
 import json
 import signal
 import sys
@@ -45,7 +46,7 @@ from stream.errors import (
 )
 
 from .atomic import write_atomic
-from .encoding import EncodedBatch, Encoder
+from .encoding import EncodedBatch, Encoder, PreparedColumns, prepare_columns
 from .job import LearnJob
 from .notices import FieldNotices
 from .outputs import RunOutputs, json_default
@@ -220,15 +221,19 @@ class LearnRun:
         self._pending = []
         live = self.job.follow or hasattr(self.source, "on_quiet")
         ahead = None if live else ReadAhead(self.source.batches())
+        pairs = ((batch, None) for batch in self.source.batches()) if ahead is None else ahead
         try:
-            for batch in (self.source.batches() if ahead is None else ahead):
+            for batch, prepared in pairs:
                 if self.task is None:
                     self._pending.append(batch)
                     if held_enough(self._pending):
                         self._learn_pending()
                 else:
-                    self._consume(batch)
+                    self._consume(batch, prepared)
                     self._after_batch(batch)
+                if ahead is not None and self.schema is not None and not ahead.preparing:
+                    ahead.prepare_with(functools.partial(
+                        prepare_columns, self.schema, scoring=self.delayed is not None))
                 if self.stop.is_set():
                     break
         finally:
@@ -306,8 +311,8 @@ class LearnRun:
                                getattr(self.source, "max_uncommitted", None)):
             self.checkpoint.write(self)
 
-    def _consume(self, raw: RawBatch) -> None:
-        batch = self.encode(raw, labels_optional=self.delayed is not None)
+    def _consume(self, raw: RawBatch, prepared: PreparedColumns | None = None) -> None:
+        batch = self.encode(raw, labels_optional=self.delayed is not None, prepared=prepared)
         if self.delayed is not None:
             self.delayed.consume(batch)
         else:
@@ -316,11 +321,12 @@ class LearnRun:
             self.progress(self._progress_facts())
 
     # ------------------------------------------------------------------ learning
-    def encode(self, raw: RawBatch, labels_optional: bool = False,
-               count: bool = True) -> EncodedBatch:
+    def encode(self, raw: RawBatch, labels_optional: bool = False, count: bool = True,
+               prepared: PreparedColumns | None = None) -> EncodedBatch:
         """Encode a raw batch; rejects go to quarantine (or stop a strict run).
-        ``labels_optional`` keeps records without a target (delayed labels)."""
-        batch = self.encoder.encode(raw, scoring=labels_optional)
+        ``labels_optional`` keeps records without a target (delayed labels); ``prepared``:
+        its columns already read on the reading thread."""
+        batch = self.encoder.encode(raw, scoring=labels_optional, prepared=prepared)
         if batch.rejects and self.job.strict:
             first = min(batch.rejects, key=lambda r: (r.line, r.field or ""))
             raise RecordError(first.message() + " (strict mode stops here)")

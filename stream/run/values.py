@@ -151,7 +151,8 @@ def factorize_labels(values: Any) -> tuple[np.ndarray, list[str | None]]:
     """Codes of each value into a list of canonical label texts.
 
     Work is done per distinct value, not per row. Several distinct raw values may share a
-    label (``1`` and ``"1.0"`` are both ``"1"``), so ``labels`` may repeat.
+    label (``1`` and ``"1.0"`` are both ``"1"``), so ``labels`` may repeat. Codes number
+    the distinct values in the order they first appear (codebooks rely on it).
 
     Returns
     -------
@@ -163,7 +164,8 @@ def factorize_labels(values: Any) -> tuple[np.ndarray, list[str | None]]:
     arr = as_array(values)
     kind = arr.dtype.kind
     if kind == "b":
-        return arr.astype(np.int64), ["False", "True"]
+        codes, uniques = pd.factorize(arr)
+        return codes.astype(np.int64), [str(bool(u)) for u in uniques]
     if kind in "iuf":
         codes, uniques = pd.factorize(arr)
         return codes.astype(np.int64), [_number_label(u) for u in uniques.tolist()]
