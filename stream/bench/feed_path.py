@@ -1,14 +1,15 @@
 """The feed-path suite: how much of the learner's in-memory rate ``sapwood learn`` keeps
 when the records come from a CSV file or through a pipe.
 
-For each learner stream (river's generators, as in the learners suite) the records are
-drawn once and held in memory; sapwood learns them through
-:meth:`~stream.classify.TreeClassifier.learn` (the in-memory rate, best of the bench's
-repeats), then the same records written to a CSV file are learned by a child ``sapwood
-learn FILE`` and ``sapwood learn -`` (the summary's records/s, which leaves out the
-start-up), with drift watching off and with ADWIN; a bare ``pandas.read_csv`` of the
-file gives the parser's own rate. Target: file and stdin at least 0.8 of the in-memory
-rate of the same settings.
+For each learner stream (river's generators, as in the learners suite) and two
+regression streams (Friedman #1 and its 50-feature variant, as in the regression suite)
+the records are drawn once and held in memory; sapwood learns them in one ``learn`` call
+(the in-memory rate, best of the bench's repeats), then the same records written to a
+CSV file are learned by a child ``sapwood learn FILE`` and ``sapwood learn -`` (the
+summary's records/s, which leaves out the start-up), with drift watching off and with
+ADWIN; a bare ``pandas.read_csv`` of the file gives the parser's own rate. Targets: file
+and stdin at least 0.8 of the in-memory rate of the same settings; Friedman #1 from the
+file at least 50x river's HoeffdingTreeRegressor (timed on the first 40k records).
 """
 
 from __future__ import annotations
@@ -21,18 +22,73 @@ from .learners import _time_sapwood
 from .streams import STREAMS, make_stream
 
 _TARGET = 0.8
+_RIVER_RECORDS = 40_000     # river is timed on the first records only (its rate is flat)
 
 
 def _ratio(value: float) -> str:
     return f"{value:.2f}"
 
 
+def _write_csv(path, names: list[str], kinds: list[str], X: np.ndarray, target) -> None:
+    import pandas as pd
+
+    columns = {}
+    for j, (feature, kind) in enumerate(zip(names, kinds)):
+        column = X[:, j]
+        columns[feature] = np.char.add("c", column.astype(np.int64).astype(str)) \
+            if kind == "category" else column
+    columns["label"] = target
+    pd.DataFrame(columns).to_csv(path, index=False, float_format="%.6f")
+
+
+def _measure(bench: Bench, result: SuiteResult, name: str, path, n: int, memory_seconds,
+             pandas_rps: float) -> dict:
+    """Rows for one stream: drift off and ADWIN, in memory (``memory_seconds(detector)``)
+    against ``sapwood learn FILE`` and ``sapwood learn -``."""
+    rows = {}
+    for detector in ("off", "adwin"):
+        memory_rps = n / memory_seconds(detector)
+        extra = ["--drift", detector]
+        bench.say(f"feed path: {name}, drift {detector}: file and stdin")
+        from_file = learn_child(bench, None, "label", pipe=False, source=str(path),
+                                extra=extra).summary
+        from_pipe = learn_child(bench, path, "label", pipe=True, extra=extra).summary
+        row = {"stream": name, "drift": detector, "memory_rps": memory_rps,
+               "file_rps": from_file["records_per_second"],
+               "stdin_rps": from_pipe["records_per_second"],
+               "pandas_rps": pandas_rps if detector == "off" else None,
+               "learned": [from_file["learned"], from_pipe["learned"]]}
+        row["file_ratio"] = row["file_rps"] / memory_rps
+        row["stdin_ratio"] = row["stdin_rps"] / memory_rps
+        result.rows.append(row)
+        rows[detector] = row
+        if row["learned"] != [n, n]:
+            result.notes.append(f"WARNING: {name}, drift {detector}: learned "
+                                f"{row['learned']} of {n:,}.")
+        result.checks += [
+            Check(f"{name}, drift {detector}: file / in memory", row["file_ratio"],
+                  _TARGET, ">=", "x"),
+            Check(f"{name}, drift {detector}: stdin / in memory", row["stdin_ratio"],
+                  _TARGET, ">=", "x"),
+        ]
+    return rows
+
+
+def _pandas_rps(bench: Bench, path, n: int) -> float:
+    import pandas as pd
+
+    start = bench.clock()
+    pd.read_csv(path)
+    return n / (bench.clock() - start)
+
+
 @register("feed-path")
 def feed_path_suite(bench: Bench) -> SuiteResult:
     """In-memory, file, stdin and pandas rates per stream, drift off and ADWIN."""
-    import pandas as pd
-
+    from stream.bench import regression as rb
     from stream.classify.settings import TreeSettings
+    from stream.regress.model import warm_up as warm_regressor
+    from stream.regress.settings import RegressionSettings
 
     n = bench.records if bench.records < 200_000 else max(bench.records, 300_000)
     result = SuiteResult(
@@ -46,50 +102,51 @@ def feed_path_suite(bench: Bench) -> SuiteResult:
     from stream.run.tasks import warm_up
 
     warm_up()                      # the kernels loaded here too, before any timing
+    warm_regressor()
     warm = warm_child(bench)
     for name in bench.streams:
         spec = STREAMS[name]
         bench.say(f"feed path: drawing {n:,} records of {name}")
         data = make_stream(spec, n, 0, bench.seed)
         path = bench.workdir / f"feed-{name}.csv"
-        columns = {}
-        for j, (feature, kind) in enumerate(zip(data.names, data.kinds)):
-            column = data.X[:, j]
-            columns[feature] = np.char.add("c", column.astype(np.int64).astype(str)) \
-                if kind == "category" else column
-        columns["label"] = np.asarray(data.classes, dtype=object)[data.y]
-        pd.DataFrame(columns).to_csv(path, index=False, float_format="%.6f")
-        start = bench.clock()
-        pd.read_csv(path)
-        pandas_rps = n / (bench.clock() - start)
-        for detector in ("off", "adwin"):
-            seconds, _, _ = _time_sapwood(data, n, TreeSettings().leaf_model, bench.clock,
-                                          detector, bench.repeats)
-            memory_rps = n / seconds
-            extra = ["--drift", detector]
-            bench.say(f"feed path: {name}, drift {detector}: file and stdin")
-            from_file = learn_child(bench, None, "label", pipe=False, source=str(path),
-                                    extra=extra).summary
-            from_pipe = learn_child(bench, path, "label", pipe=True, extra=extra).summary
-            row = {"stream": name, "drift": detector, "memory_rps": memory_rps,
-                   "file_rps": from_file["records_per_second"],
-                   "stdin_rps": from_pipe["records_per_second"], "pandas_rps": pandas_rps,
-                   "learned": [from_file["learned"], from_pipe["learned"]]}
-            row["file_ratio"] = row["file_rps"] / memory_rps
-            row["stdin_ratio"] = row["stdin_rps"] / memory_rps
-            result.rows.append(row)
-            if row["learned"] != [n, n]:
-                result.notes.append(f"WARNING: {name}, drift {detector}: learned "
-                                    f"{row['learned']} of {n:,}.")
-            result.checks += [
-                Check(f"{name}, drift {detector}: file / in memory", row["file_ratio"],
-                      _TARGET, ">=", "x"),
-                Check(f"{name}, drift {detector}: stdin / in memory", row["stdin_ratio"],
-                      _TARGET, ">=", "x"),
-            ]
+        _write_csv(path, data.names, data.kinds, data.X,
+                   np.asarray(data.classes, dtype=object)[data.y])
+        _measure(bench, result, name, path, n,
+                 lambda detector: _time_sapwood(data, n, TreeSettings().leaf_model,
+                                                bench.clock, detector, bench.repeats)[0],
+                 _pandas_rps(bench, path, n))
         path.unlink()
-    result.notes.append("In memory: one TreeClassifier.learn call over the records drawn "
+    river_rps = None
+    for name, stream in (("friedman", rb.friedman(n, bench.seed)),
+                         ("wide-friedman-50", rb.wide_friedman(n, bench.seed))):
+        bench.say(f"feed path: {name} ({n:,} records, regression)")
+        path = bench.workdir / f"feed-{name}.csv"
+        _write_csv(path, stream.names, stream.kinds, stream.X, stream.y)
+
+        def memory_seconds(detector: str, stream=stream) -> float:
+            out = rb.run_sapwood(stream, RegressionSettings(detector=detector), batch=n,
+                                 clock=bench.clock, repeats=bench.repeats)
+            return out["seconds"]
+
+        rows = _measure(bench, result, name, path, n, memory_seconds,
+                        _pandas_rps(bench, path, n))
+        path.unlink()
+        if name == "friedman":
+            m = min(n, _RIVER_RECORDS)
+            bench.say(f"feed path: river's HoeffdingTreeRegressor on {m:,} Friedman records")
+            part = rb.RegressionStream(stream.name, stream.X[:m], stream.y[:m],
+                                       stream.names, stream.kinds)
+            river_rps = m / rb.run_river(part, rb.river_counterpart(
+                RegressionSettings(detector="off")), clock=bench.clock)["seconds"]
+            ratio = rows["off"]["file_rps"] / river_rps
+            result.checks.append(Check("friedman from a file vs river's "
+                                       "HoeffdingTreeRegressor", ratio, 50.0, ">=", "x"))
+            result.notes.append(f"friedman, drift off, from the file: {ratio:.1f}x river's "
+                                f"HoeffdingTreeRegressor ({river_rps:,.0f} rec/s on the "
+                                f"first {m:,} records).")
+    result.notes.append("In memory: one learn call over the records drawn "
                         "(best of the bench's repeats). File and stdin: the child's "
-                        "records/s, from the first record read to the last learned.")
+                        "records/s, from the first record read to the last learned. "
+                        "Regression streams: the target column is named 'label' too.")
     result.notes.append(warm_note(warm))
     return result
