@@ -8,16 +8,20 @@ Inside
 * Secrets: :func:`redacted` replaces passwords (in the user part and in options whose name
   says pass, secret or token) with ``***``. Every source name and error message of a broker
   connector uses the redacted form.
-* Payloads: :func:`parse_payloads` turns messages (JSON objects or single CSV lines) into a
-  frame plus :class:`~connectors.base.Reject` entries; :func:`frame_from_fields` does the
-  same for Redis stream entries whose field/value pairs are the record.
+* Payloads: :func:`parse_payloads` turns messages into a frame plus
+  :class:`~connectors.base.Reject` entries. A message carries one record or several, as
+  gateways batch them: a JSON object, a JSON array of objects, JSON objects one per line,
+  or CSV lines. :func:`frame_from_fields` does the same for Redis stream entries whose
+  field/value pairs are the record.
 * Retries: :class:`Backoff` (bounded exponential with jitter) and :func:`with_retries`.
 
 The registry of broker sources by URL scheme is one level up, in :mod:`connectors.brokers`.
 
 For brokers, a record's "line" is its message number: a per-source sequence starting at 1
 that grows by one for every message the source hands out (and goes on from the
-checkpoint's number after a restart), so (source, line) names one message.
+checkpoint's number after a restart), so (source, line) names one message; the records
+of a message share its number, and a reject inside a message names the record ("record 3
+of the message").
 """
 
 from __future__ import annotations
@@ -51,7 +55,8 @@ DEFAULT_LINGER = 0.2
 """Seconds a source waits for more messages before handing out a partial batch."""
 
 PAYLOAD_FORMATS = ("json", "csv")
-"""Message payload formats: one JSON object, or one CSV line (columns given as an option)."""
+"""Message payload formats: JSON (an object, an array of objects, or objects one per line),
+or CSV lines (columns given as an option)."""
 
 _SECRET = "***"
 _SECRET_OPTION = re.compile(r"pass|secret|token", re.IGNORECASE)
@@ -388,7 +393,8 @@ def parse_payloads(payloads: Sequence[bytes], lines: np.ndarray,
                    origins: str | Sequence[str], tags: Sequence[str | None] | None,
                    fmt: str, columns: Sequence[str] | None = None,
                    max_bytes: int = MAX_MESSAGE_BYTES) -> Parsed:
-    """Messages to records: one JSON object, or one CSV line, per message.
+    """Messages to records: a message holds one record or several (a JSON object, a JSON
+    array of objects, JSON objects one per line; CSV lines).
 
     Parameters
     ----------
@@ -411,10 +417,11 @@ def parse_payloads(payloads: Sequence[bytes], lines: np.ndarray,
     Returns
     -------
     Parsed
-        The good records (columns: union of JSON keys in first-seen order, or
-        ``columns``), their message numbers, and a Reject for each bad message: empty,
-        too large, not valid JSON or UTF-8, not a JSON object, nested values, or a CSV
-        line with the wrong number of fields.
+        The good records in message order (columns: union of JSON keys in first-seen
+        order, or ``columns``), the message number of each, and a Reject for each bad
+        message or bad record of a message: empty, too large, not valid JSON or UTF-8,
+        not a JSON object, nested values, or a CSV line with the wrong number of fields.
+        A JSON array that is not all flat objects is rejected whole.
     """
     n = len(payloads)
     origins = _per_message(origins, n)
@@ -433,12 +440,16 @@ def parse_payloads(payloads: Sequence[bytes], lines: np.ndarray,
         else:
             keep.append(i)
     if fmt == "json":
-        frame, good, bad = _json_records([payloads[i] for i in keep])
+        frame, good, bad = _json_messages([payloads[i] for i in keep])
     elif fmt == "csv":
         if not columns:
             raise ConfigError("the csv message format needs the column names "
                               "(option columns=a,b,c)")
-        frame, good, bad = _csv_records([payloads[i] for i in keep], list(columns))
+        texts, owners, record_of = _csv_lines([payloads[i] for i in keep])
+        frame, good, bad = _csv_records(texts, list(columns))
+        good = [owners[j] for j in good]
+        bad = [(owners[j], field, value, _in_message(reason, record_of[j]))
+               for j, field, value, reason in bad]
     else:
         raise ConfigError(f"message format must be one of {', '.join(PAYLOAD_FORMATS)}, "
                           f"got {fmt!r}")
@@ -450,6 +461,121 @@ def parse_payloads(payloads: Sequence[bytes], lines: np.ndarray,
     return Parsed(frame, lines[[keep[j] for j in good]], rejects)
 
 
+def _in_message(reason: str, record: int | None) -> str:
+    """A reason for a record that shares its message with others."""
+    return reason if record is None else f"record {record} of the message: {reason}"
+
+
+def _record_lines(message: bytes) -> list[bytes]:
+    """The non-blank lines of a message (each one record)."""
+    return [line for line in message.splitlines() if line.strip()]
+
+
+def _csv_lines(messages: list[bytes]) -> tuple[list[bytes], list[int], list[int | None]]:
+    """Messages cut into one text per CSV record: (texts, the message of each, its record
+    number within a message of several, else None). A message with a quote is cut by the
+    CSV reader (a quoted field may hold a line break); one it cannot cut stays whole and
+    is rejected as it stands."""
+    texts: list[bytes] = []
+    owners: list[int] = []
+    numbers: list[int | None] = []
+    for j, message in enumerate(messages):
+        body = message.rstrip(b"\r\n")
+        if b"\n" not in body and b"\r" not in body:
+            records = [body]
+        elif b'"' not in body:
+            records = _record_lines(body)
+        else:
+            records = _quoted_records(body) or [body]
+        texts.extend(records)
+        owners.extend([j] * len(records))
+        numbers.extend([None] if len(records) == 1 else range(1, len(records) + 1))
+    return texts, owners, numbers
+
+
+def _quoted_records(body: bytes) -> list[bytes] | None:
+    """CSV records of ``body`` (quotes honoured) as texts, or None when it has an unclosed
+    quote."""
+    try:
+        rows = list(csv.reader(io.StringIO(body.decode("utf-8", "replace"), newline=""),
+                               strict=True))
+    except csv.Error:
+        return None
+    out = []
+    for row in rows:
+        if not row or row == [""]:
+            continue
+        buffer = io.StringIO()
+        csv.writer(buffer, lineterminator="\n").writerow(row)   # quotes a line break
+        out.append(buffer.getvalue()[:-1].encode("utf-8"))
+    return out
+
+
+def _json_messages(messages: list[bytes]):
+    """(frame, message of each good record, [(message, field, value, reason)]).
+
+    A message starting with ``[`` is one JSON array of records (decoded on its own, so a
+    broken one cannot merge with its neighbours); a message of several lines holds one
+    JSON object per line; any other message is one object."""
+    texts: list[bytes] = []
+    owners: list[int] = []
+    numbers: list[int | None] = []
+    arrays: dict[int, list[dict]] = {}
+    bad: list[tuple[int, str | None, str | None, str]] = []
+    for j, message in enumerate(messages):
+        body = message.strip()
+        if body[:1] == b"[":
+            records, problem = _json_array(body)
+            if problem is not None:
+                bad.append((j, *problem))
+            else:
+                arrays[j] = records
+            continue
+        records = _record_lines(body) if b"\n" in body or b"\r" in body else [body]
+        texts.extend(records)
+        owners.extend([j] * len(records))
+        numbers.extend([None] if len(records) == 1 else range(1, len(records) + 1))
+    objects, good, bad_texts = _json_records(texts)
+    bad += [(owners[k], field, value, _in_message(reason, numbers[k]))
+            for k, field, value, reason in bad_texts]
+    if arrays:     # records in message order: arrays between the texts' records
+        by_message: dict[int, list[dict]] = {j: [] for j in range(len(messages))}
+        for k, obj in zip(good, objects):
+            by_message[owners[k]].append(obj)
+        by_message.update(arrays)
+        objects = [obj for j in range(len(messages)) for obj in by_message[j]]
+        good_messages = [j for j in range(len(messages)) for _ in by_message[j]]
+    else:
+        good_messages = [owners[k] for k in good]
+    frame = pd.DataFrame(objects) if objects else _empty_frame()
+    return frame, good_messages, bad
+
+
+def _json_array(body: bytes) -> tuple[list[dict], tuple | None]:
+    """The records of one message holding a JSON array, or the reason it is refused
+    (as (field, value, reason)): every element must be a flat JSON object."""
+    try:
+        records = json.loads(body)
+    except json.JSONDecodeError as exc:
+        return [], (None, raw_text(body), f"is not valid JSON: {exc.msg} at column "
+                                          f"{exc.colno}")
+    except UnicodeDecodeError:
+        return [], (None, raw_text(body), "is not valid UTF-8")
+    for number, record in enumerate(records, 1):
+        if type(record) is not dict:
+            return [], (None, raw_text(body), f"record {number} of the message is not a "
+                                              "JSON object")
+        for key, value in record.items():
+            if type(value) in _NESTED:
+                shown = json.dumps(value, ensure_ascii=False)
+                return [], (key, raw_text(shown.encode()), f"record {number} of the "
+                                                           "message: is a nested value "
+                                                           "(list or object)")
+    if may_hold_surrogates(body):
+        records = valid_objects(records)
+    return records, None
+
+
 def _empty_frame(columns: Sequence[str] = ()) -> pd.DataFrame:
     if columns:
         return pd.DataFrame({name: pd.Series([], dtype=object) for name in columns})
@@ -457,12 +583,13 @@ def _empty_frame(columns: Sequence[str] = ()) -> pd.DataFrame:
 
 
 def _json_records(texts: list[bytes]):
-    """(frame, indices of good texts, [(index, field, value, reason)])."""
+    """(objects, indices of good texts, [(index, field, value, reason)]): one JSON object
+    per text."""
     if not texts:
-        return _empty_frame(), [], []
+        return [], [], []
     objects = _json_fast(texts)
     if objects is not None:
-        return pd.DataFrame(objects), list(range(len(texts))), []
+        return objects, list(range(len(texts))), []
     objects, good, bad = [], [], []
     for j, text in enumerate(texts):
         try:
@@ -488,8 +615,7 @@ def _json_records(texts: list[bytes]):
             obj = valid_objects([obj])[0]
         objects.append(obj)
         good.append(j)
-    frame = pd.DataFrame(objects) if objects else _empty_frame()
-    return frame, good, bad
+    return objects, good, bad
 
 
 def _json_fast(texts: list[bytes]) -> list[dict] | None:

@@ -35,6 +35,7 @@ _UNITS: dict[str, Callable[[float], str]] = {
     "s": lambda v: f"{v:,.2f} s",
     "/1M": lambda v: f"{v:,.1f} per 1M",
     "rmse": lambda v: f"{v:.4f}",
+    "rec/s": lambda v: f"{v:,.0f} rec/s",
 }
 
 

@@ -141,7 +141,7 @@ def test_bad_json_messages_are_rejected_with_origin_line_and_reason():
     got = [(r.origin, r.line, r.field, r.value, r.reason) for r in parsed.rejects]
     assert got == [
         ("plant/1", 2, None, "not json", "is not valid JSON: Expecting value at column 1"),
-        ("plant/2", 3, None, "[1, 2]", "is not a JSON object"),
+        ("plant/2", 3, None, "[1, 2]", "record 1 of the message is not a JSON object"),
         ("plant/3", 4, "t", '{"x": 1}', "is a nested value (list or object)"),
         ("plant/4", 5, None, None, "message is empty"),
         ("plant/5", 6, None, None, "message is empty"),
@@ -185,26 +185,58 @@ json_object = st.dictionaries(st.sampled_from(["a", "b", "c", "d"]), json_value,
                                            b'{"a": 1}\n{"b": 2}', b'{"a": "\n"}'])),
                 max_size=12))
 def test_json_batches_match_message_by_message_decoding(payloads):
-    """Whatever the mix, a message is a row iff json.loads (Python's reference decoder)
-    gives a flat object for it alone, with the same values."""
+    """Whatever the mix, the records are those json.loads (Python's reference decoder)
+    gives for each message alone, or for each line of a message of several lines: flat
+    objects, with the same values; every other message or line is rejected."""
     parsed = _parse(payloads)
-    expected_rows, expected_lines = [], []
+    expected_rows, expected_lines, rejected = [], [], set()
+
+    def flat(obj):
+        return type(obj) is dict and not any(type(v) in (list, dict) for v in obj.values())
+
     for i, p in enumerate(payloads, start=1):
-        try:
-            obj = json.loads(p)
-        except ValueError:
+        body = p.strip()
+        if not body:
+            rejected.add(i)
             continue
-        if type(obj) is dict and not any(type(v) in (list, dict) for v in obj.values()):
-            expected_rows.append(obj)
-            expected_lines.append(i)
+        for text in (body.splitlines() if b"\n" in body else [body]):
+            if not text.strip():
+                continue
+            try:
+                obj = json.loads(text)
+            except ValueError:
+                rejected.add(i)
+                continue
+            if flat(obj):
+                expected_rows.append(obj)
+                expected_lines.append(i)
+            else:
+                rejected.add(i)
     assert parsed.lines.tolist() == expected_lines
     rows = parsed.frame.to_dict("records")
     for got, want in zip(rows, expected_rows):
         for key, value in want.items():
             assert (got[key] is None or got[key] != got[key]) if value is None \
                 else got[key] == value
-    assert {r.line for r in parsed.rejects} == set(range(1, len(payloads) + 1)) - \
-        set(expected_lines)
+    assert {r.line for r in parsed.rejects} == rejected
+
+
+def test_a_message_may_carry_many_records_in_a_json_array_or_one_per_line():
+    payloads = [b'[{"t": 1}, {"t": 2, "door": "open"}]', b'{"t": 3}',
+                b'{"t": 4}\n\n{"t": 5}\r\n', b"[]", b'[{"t": 6}, {"t": [7]}]',
+                b'[{"t": 8}, 9]', b'{"t": 10}\nnot json\n{"t": 11}', b'[{"t": 12}']
+    parsed = _parse(payloads)
+    # reference: json.loads of each array, and of each line of a message of several
+    assert parsed.frame["t"].tolist() == [1, 2, 3, 4, 5, 10, 11]
+    assert parsed.frame["door"].isna().tolist() == [True, False, True, True, True, True, True]
+    assert parsed.lines.tolist() == [1, 1, 2, 3, 3, 7, 7]
+    got = [(r.line, r.field, r.reason) for r in parsed.rejects]
+    assert got == [
+        (5, "t", "record 2 of the message: is a nested value (list or object)"),
+        (6, None, "record 2 of the message is not a JSON object"),
+        (7, None, "record 2 of the message: is not valid JSON: Expecting value at column 1"),
+        (8, None, "is not valid JSON: Expecting ',' delimiter at column 11"),
+    ]
 
 
 # ---------------------------------------------------------------------------------------
@@ -214,18 +246,20 @@ def test_json_batches_match_message_by_message_decoding(payloads):
 def test_csv_lines_parse_like_pandas_and_bad_field_counts_are_rejected():
     columns = ["t", "door", "fault"]
     payloads = [b"1.5,open,no\n", b'2,"closed, latched",yes', b"3,open", b"4,open,no,extra",
-                b'5,"unclosed,no', b"6,open,no\r\n", b"7,a,b\n8,c,d", b"NA,,yes"]
+                b'5,"unclosed,no', b"6,open,no\r\n", b"7,a,b\n8,c,d\n", b"NA,,yes",
+                b'9,"two\nlines",no\n10,x,y,z\n11,q,"r"']
     parsed = _parse(payloads, fmt="csv", columns=columns)
-    good = [b"1.5,open,no", b'2,"closed, latched",yes', b"6,open,no", b"NA,,yes"]
-    # reference: pandas' own CSV reader on the good lines
+    good = [b"1.5,open,no", b'2,"closed, latched",yes', b"6,open,no", b"7,a,b", b"8,c,d",
+            b"NA,,yes", b'9,"two\nlines",no', b'11,q,"r"']
+    # reference: pandas' own CSV reader on the good records
     expected = pd.read_csv(io.BytesIO(b"\n".join(good)), names=columns, header=None)
     pd.testing.assert_frame_equal(parsed.frame, expected)
-    assert parsed.lines.tolist() == [1, 2, 6, 8]
+    assert parsed.lines.tolist() == [1, 2, 6, 7, 7, 8, 9, 9]
     assert [(r.line, r.reason) for r in parsed.rejects] == [
         (3, "has 2 fields, expected 3"),
         (4, "has 4 fields, expected 3"),
         (5, "has an unclosed quote or more than one line"),
-        (7, "holds more than one line"),
+        (9, "record 2 of the message: has 4 fields, expected 3"),
     ]
 
 

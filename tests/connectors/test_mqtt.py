@@ -188,6 +188,27 @@ def test_csv_payloads(broker, cid):
         [("csv/a", 3, "has 2 fields, expected 3")]
 
 
+def test_a_message_may_carry_many_records(broker, cid):
+    """Gateways batch readings: a JSON array of objects, JSON objects one per line, or
+    CSV lines in one message; the records keep their order and their message number."""
+    url = broker.url("many/+", client_id=cid)
+    subscribe_once(url)
+    array = json.dumps([{"n": i, "temp": 20.0 + i} for i in range(0, 300)])
+    lines = "\n".join(json.dumps({"n": i, "temp": 1.0}) for i in range(300, 305))
+    publish(broker, [("many/a", array), ("many/b", lines), ("many/a", '{"n": 305}')])
+    batches = read_all(source(url, 100, idle_exit=0.5))
+    assert values(batches) == list(range(306))
+    assert [int(x) for b in batches for x in b.lines] == [1] * 300 + [2] * 5 + [3]
+    assert not [r for b in batches for r in b.rejects]
+
+    url = broker.url("manycsv/+", client_id=cid + "c", format="csv", columns="n,temp")
+    subscribe_once(url)
+    publish(broker, [("manycsv/a", "1,20.5\n2,21.5\n3,x\n"), ("manycsv/a", "4,22.0")])
+    batches = read_all(source(url, 100, idle_exit=0.5))
+    assert values(batches) == [1, 2, 3, 4]
+    assert [int(x) for b in batches for x in b.lines] == [1, 1, 1, 2]
+
+
 def test_bad_payloads_go_to_quarantine_with_topic_and_reason(broker, cid, tmp_path):
     url = broker.url("bad/#", client_id=cid, max_bytes=2000)
     subscribe_once(url)
@@ -203,7 +224,7 @@ def test_bad_payloads_go_to_quarantine_with_topic_and_reason(broker, cid, tmp_pa
     entries = [json.loads(line) for line in path.read_text().splitlines()]
     assert [(e["origin"], e["line"], e["field"], e["reason"]) for e in entries] == [
         ("bad/text", 2, None, "is not valid JSON: Expecting value at column 1"),
-        ("bad/list", 3, None, "is not a JSON object"),
+        ("bad/list", 3, None, "record 1 of the message is not a JSON object"),
         ("bad/big", 4, None, "message is 3009 bytes, over the limit of 2000"),
         ("bad/nested", 5, "n", "is a nested value (list or object)"),
     ]
