@@ -63,6 +63,10 @@ FORMATS = ("fields",) + PAYLOAD_FORMATS
 _PORTS = {"redis": 6379, "rediss": 6379}
 _ACK_CHUNK = 10000
 _CLAIM_COUNT = 1000
+READ_COUNT = 8192
+"""Most entries one XREADGROUP asks for (a batch holds at most this many): measured on
+200k entries of 4 fields, a whole run read 125k records/s at 65,536 per read and 145k
+at 8,192 (the server builds, and the client parses, smaller replies faster)."""
 
 
 def entry_id(text: str | bytes) -> tuple[int, int]:
@@ -392,7 +396,7 @@ class RedisStreamSource:
         """(entries, True when they are this consumer's pending ones)."""
         def make_args() -> tuple:
             args = ("XREADGROUP", "GROUP", self._group, self._consumer,
-                    "COUNT", self._batch_rows)
+                    "COUNT", min(self._batch_rows, READ_COUNT))
             if self._cursor == b">":
                 args += ("BLOCK", block_ms)  # reading pending entries never blocks
             return args + ("STREAMS", self._stream, self._cursor)

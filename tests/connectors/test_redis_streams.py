@@ -237,7 +237,7 @@ def test_bad_entries_go_to_quarantine_with_entry_id_and_reason(server, stream, t
         (stream, 2, f"is not valid JSON: Expecting value at column 1 (entry {ids[1]})"),
         (stream, 3, f"entry {ids[2]} has no field 'payload'"),
         (stream, 4, f"message is 309 bytes, over the limit of 200 (entry {ids[3]})"),
-        (stream, 5, f"is not a JSON object (entry {ids[4]})"),
+        (stream, 5, f"record 1 of the message is not a JSON object (entry {ids[4]})"),
     ]
 
 
