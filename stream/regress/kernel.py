@@ -618,7 +618,7 @@ def attempt_split(t, n: int, record: int) -> None:
 
 # ---------------------------------------------------------------- the record loops
 
-@njit
+@njit(nogil=True)
 def learn_batch(t, X, y, start: int, pred, leaf, plain: bool) -> int:
     """Score then learn records ``start..`` of ``X``/``y``; returns the first index not done.
 
