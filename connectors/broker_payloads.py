@@ -471,6 +471,15 @@ def _record_lines(message: bytes) -> list[bytes]:
     return [line for line in message.splitlines() if line.strip()]
 
 
+def _add_records(records: list[bytes], message: int, texts: list[bytes], owners: list[int],
+                 numbers: list[int | None]) -> None:
+    """Append a message's record texts, the message of each and its record number (None
+    for a message of one record)."""
+    texts.extend(records)
+    owners.extend([message] * len(records))
+    numbers.extend([None] if len(records) == 1 else range(1, len(records) + 1))
+
+
 def _csv_lines(messages: list[bytes]) -> tuple[list[bytes], list[int], list[int | None]]:
     """Messages cut into one text per CSV record: (texts, the message of each, its record
     number within a message of several, else None). A message with a quote is cut by the
@@ -487,9 +496,7 @@ def _csv_lines(messages: list[bytes]) -> tuple[list[bytes], list[int], list[int 
             records = _record_lines(body)
         else:
             records = _quoted_records(body) or [body]
-        texts.extend(records)
-        owners.extend([j] * len(records))
-        numbers.extend([None] if len(records) == 1 else range(1, len(records) + 1))
+        _add_records(records, j, texts, owners, numbers)
     return texts, owners, numbers
 
 
@@ -532,9 +539,7 @@ def _json_messages(messages: list[bytes]):
                 arrays[j] = records
             continue
         records = _record_lines(body) if b"\n" in body or b"\r" in body else [body]
-        texts.extend(records)
-        owners.extend([j] * len(records))
-        numbers.extend([None] if len(records) == 1 else range(1, len(records) + 1))
+        _add_records(records, j, texts, owners, numbers)
     objects, good, bad_texts = _json_records(texts)
     bad += [(owners[k], field, value, _in_message(reason, numbers[k]))
             for k, field, value, reason in bad_texts]
