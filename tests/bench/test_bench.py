@@ -137,7 +137,7 @@ def test_feeds_suite_learns_every_record_from_each_feed(tmp_path):
     if REDIS_SERVER is not None:
         expected += [("Redis stream", "none"), ("Redis stream", "every 10,000")]
     if MOSQUITTO is not None:
-        expected += [("MQTT topic", "none")]
+        expected += [("MQTT topic", "none"), ("MQTT topic, 100 records per message", "none")]
     assert [(r["feed"], r["checkpoint"]) for r in feeds.rows] == expected
     assert all(r["records"] == 12_000 for r in feeds.rows)
     assert [r["checkpoints"] for r in feeds.rows if r["checkpoint"] != "none"] == \
@@ -239,12 +239,15 @@ def test_feed_path_suite_learns_every_record_three_ways(tmp_path):
     run = Bench(tmp_path, records=3_000, streams=("agrawal",), repeats=1,
                 say=lambda message: None)
     (result,) = run_bench(run, ["feed-path"])
-    assert [(r["stream"], r["drift"]) for r in result.rows] == [("agrawal", "off"),
-                                                                 ("agrawal", "adwin")]
+    # the regression streams run whatever learner streams are chosen
+    assert [(r["stream"], r["drift"]) for r in result.rows] == [
+        (name, drift) for name in ("agrawal", "friedman", "wide-friedman-50")
+        for drift in ("off", "adwin")]
     for row in result.rows:
         assert row["learned"] == [3_000, 3_000]       # file and stdin: every record
         assert row["file_ratio"] == pytest.approx(row["file_rps"] / row["memory_rps"])
-    assert [c.target for c in result.checks] == [0.8] * 4
+    # per stream: file and stdin, drift off and ADWIN; Friedman from the file vs river
+    assert [c.target for c in result.checks] == [0.8] * 8 + [50.0] + [0.8] * 4
 
 
 def test_false_changes_suite_counts_per_million_records(tmp_path):
