@@ -94,6 +94,7 @@ class LearnRun:
         self.resumed_at: int | None = None
         self.saved = False
         self.started = self.finished = self.startup_seconds = 0.0
+        self.last_batch_at: float | None = None   # when the last records were accounted for
         self.source = None
         self.checkpoint = RunCheckpoint(job, self.warn) if job.checkpoint_path else None
         resumed = self.checkpoint.resumed_outputs() if self.checkpoint else None
@@ -167,6 +168,10 @@ class LearnRun:
                 if self.checkpoint is None:
                     self.delayed.commit()   # nothing durable to wait for
             self.finished = self.clock()
+            if self._live() and self.delayed is None and self.last_batch_at is not None:
+                # a live feed ends after a quiet spell (or on a stop): its time ends with
+                # the last batch learned, so records_per_second is the rate of learning
+                self.finished = self.last_batch_at
             self._check_target_of_empty_input()
             if self.task is None and self._first_unread is not None:
                 self.warn(f"no record could be learned: all {self.records:,} records read "
@@ -219,8 +224,7 @@ class LearnRun:
         """Every batch of the source, through schema inference, learning and checkpoints.
         Files and pipes are read one batch ahead on a thread of their own."""
         self._pending = []
-        live = self.job.follow or hasattr(self.source, "on_quiet")
-        ahead = None if live else ReadAhead(self.source.batches())
+        ahead = None if self._live() else ReadAhead(self.source.batches())
         pairs = ((batch, None) for batch in self.source.batches()) if ahead is None else ahead
         try:
             for batch, prepared in pairs:
@@ -243,6 +247,10 @@ class LearnRun:
             # during inference)
             if self._pending and sys.exc_info()[0] in (None, FollowStopped, InputError):
                 self._learn_pending()
+
+    def _live(self) -> bool:
+        """Whether the source waits for more records (a followed file, a broker)."""
+        return self.job.follow or hasattr(self.source, "on_quiet")
 
     def _learn_pending(self) -> None:
         """Infer the schema from the batches held back, then learn them."""
@@ -300,6 +308,8 @@ class LearnRun:
             self.position = batch.position
         grown = self.records - self.records_seen
         self.records_seen = self.records
+        if grown:
+            self.last_batch_at = self.clock()
         if self.checkpoint is None:
             if self.position is not None and hasattr(self.source, "commit"):
                 self.source.commit(self.position)  # nothing durable to wait for

@@ -2,7 +2,9 @@
 
 The contract (``sapwood learn --summary FILE``): at least records, learned, quarantined,
 task, accuracy and kappa (classification) or mae, rmse and r2 (regression), leaves,
-depth, drift_alarms, seconds and records_per_second.
+depth, drift_alarms, seconds and records_per_second. ``seconds`` runs from opening the
+source to the end of the reading; for a live feed (a followed file, a broker) to its last
+records, so the quiet spell that ends it is not counted.
 """
 
 from __future__ import annotations

@@ -429,6 +429,25 @@ def test_learn_reads_a_stream_and_publishes_each_prediction_to_another(server, s
     assert pending_count(server, stream) == 0
 
 
+def test_the_quiet_spell_that_ends_a_live_run_is_not_in_its_seconds(server, stream):
+    """A broker run ends after ``idle_exit`` quiet seconds; the summary's seconds (and so
+    records_per_second) end with the last records learned."""
+    import time
+
+    from stream.run.engine import run_learn
+    from stream.run.job import LearnJob
+
+    add(server, stream, 500)
+    started = time.monotonic()
+    summary = run_learn(LearnJob(sources=[server.url(stream=stream, idle_exit=1.5)],
+                                 target="state"))
+    wall = time.monotonic() - started
+    assert summary["learned"] == 500 and wall >= 1.5
+    assert summary["seconds"] < wall - 1.0
+    assert summary["records_per_second"] == pytest.approx(
+        summary["records"] / summary["seconds"], rel=1e-4, abs=0.1)
+
+
 def test_a_caught_up_run_stops_within_a_second_of_sigterm_with_a_checkpoint(
         server, stream, tmp_path):
     """A learner that has read everything waits in XREADGROUP BLOCK; SIGTERM must end it
