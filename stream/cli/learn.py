@@ -10,6 +10,7 @@ import click
 
 from stream.errors import ConfigError, SapwoodError
 from stream.rules.text import CAUTION
+from stream.shown import printable
 
 from .output import echo
 from .config import config_options, settings_in_force
@@ -98,7 +99,8 @@ def learn_job(sources: list[str], kw: dict):
         labels=list(kw["label_sources"]),
         label_window=DEFAULT_LABEL_WINDOW if kw["label_window"] is None
         else kw["label_window"],
-        label_seconds=kw["label_seconds"] or 0.0, id_field=kw["id_field"], **durable)
+        label_seconds=kw["label_seconds"] or 0.0, id_field=kw["id_field"],
+        concern=kw["concern"], **durable)
 
 
 class _Progress:
@@ -143,6 +145,11 @@ def closing_report(s: dict) -> str:
         lines.append(f"  accuracy {_percent(s.get('accuracy'))}, kappa "
                      f"{_number(s.get('kappa'))}, last {s.get('window', 1000):,} records "
                      f"{_percent(s.get('window_accuracy'))}; {rules}")
+        if s.get("concern") is not None:
+            lines.append(f"  class of concern {printable(s['concern'])}: precision "
+                         f"{_percent(s.get('concern_precision'))}, recall "
+                         f"{_percent(s.get('concern_recall'))}, F1 "
+                         f"{_number(s.get('concern_f1'))}")
     if s.get("drift_alarms"):
         lines.append(f"  drift: {s['swaps']:,} confirmed changes (alternates swapped in); "
                      f"{s['drift_alarms']:,} unconfirmed alarms, {s['alternates_started']:,} "

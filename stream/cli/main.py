@@ -16,7 +16,7 @@ from stream.errors import EXIT_USAGE, SapwoodError
 from stream.rules.text import CAUTION
 
 from .output import echo
-from .options import Whole, form_option, format_option, option, parse_kinds
+from .options import Whole, concern_option, form_option, format_option, option, parse_kinds
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -52,18 +52,24 @@ def score(model_path, sources, fmt, predictions_path, quarantine_path) -> None:
 @click.argument("path", metavar="MODEL|SNAPSHOT")
 @form_option(("text", "json"), "Aligned text for people, or JSON.")
 @option("--top", type=Whole(1), default=None,
-        help="Only the this many rules that cover the most records.")
-def rules(path, form, form_old, top) -> None:
+        help="Only this many rules: those predicting the class of concern first, then "
+             "those covering the most records.")
+@concern_option()
+def rules(path, form, form_old, top, concern) -> None:
     """Print the rules of a saved MODEL, a snapshot file, or the newest snapshot of a
-    snapshot directory."""
+    snapshot directory, those predicting the class of concern first."""
     from stream.views.rule_sources import load_rules
-    from stream.rules.rule import sort_rules
+    from stream.rules.concern import concern_of, concern_order, top_rules
 
     header, rule_list = load_rules(path)
+    concern = concern_of(header, rule_list, concern)
+    header = {**header, "concern": concern}
+    held = sum(r.class_counts.get(concern, 0.0) for r in rule_list) if concern else 0.0
     if top is not None:
-        kept = sorted(rule_list, key=lambda r: -r.coverage)[:top]
-        rule_list = sort_rules(kept)
+        rule_list = top_rules(rule_list, concern, top)
         header = {**header, "shown": len(rule_list)}
+    else:
+        rule_list = concern_order(rule_list, concern)
     if (form or form_old) == "json":
         from stream.rules.rule import rules_payload
 
@@ -71,7 +77,7 @@ def rules(path, form, form_old, top) -> None:
     else:
         from stream.rules.text import render_text
 
-        echo(render_text(rule_list, header), nl=False)
+        echo(render_text(rule_list, {**header, "concern_records": held}), nl=False)
 
 
 @cli.command()

@@ -172,6 +172,13 @@ def format_option(group: str | None = INPUT) -> Callable:
                        "sniffed on stdin).")
 
 
+def concern_option() -> Callable:
+    """A view's ``--concern``: which class leads (default: the one the run chose)."""
+    return option("--concern", default=None, metavar="CLASS|high|low",
+                  help="Lead with the rules predicting this class (default: the run's "
+                       "class of concern); high or low for a numeric target.")
+
+
 def form_option(forms: tuple[str, ...], help: str, group: str | None = None) -> Callable:
     """``--form``: the form of what a command prints (with ``--format`` kept hidden for a
     release, under its old meaning)."""
@@ -188,6 +195,12 @@ def input_options() -> Callable:
         option("--task", group=INPUT, type=click.Choice(["classification", "regression"]),
                default=None,
                help="Predict a class or a number (default: from the target's values)."),
+        option("--concern", group=INPUT, default=None, metavar="CLASS|high|low",
+               help="The class of concern (the fault, alarm or reject class), which the "
+                    "rules, notes, diff, watch and report lead with and whose precision, "
+                    "recall and F1 the summary and metrics carry [the rarest class among "
+                    "the first 1,000 labels]; for a numeric target high or low (the rules "
+                    "predicting the highest, or lowest, values first)."),
         format_option(),
         option("--schema", "schema_path", group=INPUT, type=click.Path(dir_okay=False),
                help="Schema file (see `sapwood schema`); otherwise inferred."),

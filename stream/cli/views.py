@@ -20,7 +20,8 @@ from stream.errors import ConfigError, InputError
 from stream.rules.text import CAUTION
 
 from .output import echo
-from .options import Number, Whole, form_option, format_option, option, renamed
+from .options import (Number, Whole, concern_option, form_option, format_option, option,
+                      renamed)
 
 
 
@@ -42,13 +43,15 @@ def _iso_now() -> str:
         show_default=True,
         help="Smallest move in confidence or coverage (percentage points) listed for a "
              "rule whose conditions and outcome stayed the same.")
-def diff(paths, first, last, form, form_old, min_shift) -> None:
+@concern_option()
+def diff(paths, first, last, form, form_old, min_shift, concern) -> None:
     """Compare two rule sets: the newest two snapshots of DIRECTORY (or --from/--to), or
     two snapshot or model files OLD and NEW.
 
     Lists rules new and gone, thresholds moved (in the feature's units), outcomes and
     category lists changed, and confidence or coverage shifts. Rules are matched by their
-    conditions, not their ids, so a threshold that moves a little keeps its rule.
+    conditions, not their ids, so a threshold that moves a little keeps its rule. Changes
+    to the rules predicting the class of concern are listed first.
 
     \b
     Example:
@@ -60,7 +63,10 @@ def diff(paths, first, last, form, form_old, min_shift) -> None:
 
     fmt = form or form_old or "text"
     (old_header, old_rules), (new_header, new_rules) = pick_pair(paths, first, last)
-    result = diff_rules(old_rules, new_rules, old_header, new_header)
+    from stream.rules.concern import concern_of
+
+    concern = concern_of(new_header, new_rules, concern)
+    result = diff_rules(old_rules, new_rules, old_header, new_header).concern_first(concern)
     if fmt == "json":
         echo(json.dumps(result.to_dict(), indent=2))
     elif fmt == "markdown":
@@ -86,20 +92,28 @@ def diff(paths, first, last, form, form_old, min_shift) -> None:
 @click.option("--exact", is_flag=True,
               help="The tree's rules as they are, without joining rules that decide alike.")
 @click.option("--title", default=None, help="Heading of the note.")
-def notes(path, since, label, top, exact, title) -> None:
+@concern_option()
+def notes(path, since, label, top, exact, title, concern) -> None:
     """Write the current rules as Markdown for a ticket or a shift note.
 
     By default rules that predict the same class and differ in one condition are joined
-    (every record still gets the same predicted class), bounds are merged per feature,
-    and rules are sorted by class, then coverage. The note ends with the safety note.
+    (every record still gets the same predicted class), bounds are merged per feature.
+    The rules predicting the class of concern come first, those catching most of it
+    first; the rest follow by class, then coverage. The note ends with the safety note.
     """
+    from stream.rules.concern import concern_of, concern_order, top_rules
     from stream.rules.diff import diff_rules
     from stream.views.rule_sources import load_side
     from stream.rules.markdown import shift_note
     from stream.rules.simplify import Simplified, simplify
 
     header, rules = load_side(path)
+    concern = concern_of(header, rules, concern)
+    header = {**header, "concern": concern, "concern_records": sum(
+        r.class_counts.get(concern, 0.0) for r in rules) if concern is not None else 0}
     items = [Simplified(r, (r.id,)) for r in rules] if exact else simplify(rules)
+    place = {id(r): k for k, r in enumerate(concern_order([s.rule for s in items], concern))}
+    items.sort(key=lambda s: place[id(s.rule)])
     if label is not None:
         known = sorted({r.predict for r in rules if r.predict is not None})
         if label not in known:
@@ -108,8 +122,8 @@ def notes(path, since, label, top, exact, title) -> None:
         items = [s for s in items if s.rule.predict == label]
     total = len(items)
     if top is not None:
-        keep = {id(s) for s in sorted(items, key=lambda s: -s.rule.coverage)[:top]}
-        items = [s for s in items if id(s) in keep]
+        keep = {id(r) for r in top_rules([s.rule for s in items], concern, top)}
+        items = [s for s in items if id(s.rule) in keep]
     shown = [s.rule for s in items] if exact else items
     change = None
     if since is not None:
@@ -192,6 +206,8 @@ def _explain_with_model(path, sources, records, fmt, output, limit) -> None:
     saved = load_model(path)
     warm_up()
     target = saved.schema.target
+    concern = saved.task.headline(saved.task.result(saved.encoder)).get("concern") \
+        or saved.facts.get("concern")
     done = 0
     for batch in _batches(sources, records, fmt, saved.schema.names):
         explained, rejects = explain_batch(saved, batch)
@@ -203,7 +219,7 @@ def _explain_with_model(path, sources, records, fmt, output, limit) -> None:
             if output == "json":
                 echo(json.dumps(item.to_dict()))
             else:
-                echo(render_explanation(item, target))
+                echo(render_explanation(item, target, concern))
             done += 1
     if output == "text" and done:
         echo(CAUTION)
@@ -309,7 +325,8 @@ def watch(snapshot_dir, metrics_path, events_path, interval, once) -> None:
 @click.option("--out", "out_path", type=click.Path(dir_okay=False), default="report.html",
               show_default=True, help="Where to write the page.")
 @click.option("--title", default=None, help="Title of the page.")
-def report(snapshot_dir, metrics_path, events_path, out_path, title) -> None:
+@concern_option()
+def report(snapshot_dir, metrics_path, events_path, out_path, title, concern) -> None:
     """Write one self-contained HTML page about a run: metrics over time with drift events,
     tree size, rule churn per snapshot, the current rules, the changes from the first
     snapshot to the last, and the safety note. The page loads nothing from the network.
@@ -318,7 +335,7 @@ def report(snapshot_dir, metrics_path, events_path, out_path, title) -> None:
 
     started = time.perf_counter()
     data = load_report_data(snapshot_dir, metrics_path, events_path)
-    size = write_report(out_path, data, _iso_now(), title)
+    size = write_report(out_path, data, _iso_now(), title, concern)
     echo(f"sapwood: report written to {out_path} ({size / 1024:,.0f} KiB, "
                f"{time.perf_counter() - started:.1f} s)", err=True)
     echo(out_path)

@@ -116,6 +116,28 @@ class RuleDiff:
     added: list[tuple[Rule, list[str]]]      # rule, ids of old rules it overlaps
     removed: list[tuple[Rule, list[str]]]    # rule, ids of new rules that overlap it
     matched: list[Change]
+    concern: str | None = None               # the class of concern, once led with
+
+    def concern_first(self, concern: str | None) -> "RuleDiff":
+        """The same diff with the entries touching the class of concern (a rule that
+        predicts it, before or after) listed first in each list, order kept otherwise."""
+        if concern is None:
+            return self
+
+        def first(pairs):
+            return sorted(pairs, key=lambda p: p[0].predict != concern)
+
+        return dataclasses.replace(
+            self, added=first(self.added), removed=first(self.removed),
+            matched=sorted(self.matched, key=lambda c: not touches(c, concern)),
+            concern=concern)
+
+    def concern_count(self) -> int:
+        """Rules new, gone or changed that predict (or predicted) the class of concern."""
+        if self.concern is None:
+            return 0
+        return (sum(r.predict == self.concern for r, _ in self.added + self.removed)
+                + sum(touches(c, self.concern) for c in self.changed))
 
     @property
     def changed(self) -> list[Change]:
@@ -139,11 +161,17 @@ class RuleDiff:
         return {
             "format": "sapwood-rule-diff", "version": 1,
             "old": self.old_header, "new": self.new_header, "counts": self.churn(),
+            "concern": self.concern, "concern_changes": self.concern_count(),
             "added": [{**rule.to_dict(), "overlaps_old": ids} for rule, ids in self.added],
             "removed": [{**rule.to_dict(), "covered_by_new": ids}
                         for rule, ids in self.removed],
             "matched": [c.to_dict() for c in self.matched],
         }
+
+
+def touches(change: Change, concern: str) -> bool:
+    """Whether a matched rule predicts the class of concern on either side."""
+    return change.old.predict == concern or change.new.predict == concern
 
 
 def _shift(old: float, new: float, digits: int = 6) -> dict:
@@ -320,7 +348,11 @@ def render_diff_text(diff: RuleDiff, min_shift: float = 0.02) -> str:
              f"{len(diff.matched) + len(diff.added)} rules",
              f"  {counts['added']} new, {counts['removed']} gone, {counts['changed']} changed "
              f"({counts['thresholds_moved']} thresholds moved, {counts['outcome_changed']} "
-             f"outcomes changed), {counts['unchanged']} kept", ""]
+             f"outcomes changed), {counts['unchanged']} kept"]
+    if diff.concern is not None:
+        lines.append(f"  class of concern {diff.concern}: {diff.concern_count()} of these "
+                     f"changes touch rules predicting it (listed first)")
+    lines.append("")
     width = max([len(r.id) for r, _ in diff.added + diff.removed]
                 + [len(_ids(c)) for c in diff.matched] + [2]) + 2
     pad = " " * width

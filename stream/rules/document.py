@@ -25,6 +25,7 @@ _HEADER = {  # field -> (what it must be, test); optional, may be null unless sa
     "accuracy": (_NUMBER, lambda v: v is None or _is_number(v)),
     "kappa": (_NUMBER, lambda v: v is None or _is_number(v)),
     "window_accuracy": (_NUMBER, lambda v: v is None or _is_number(v)),
+    "concern": ("text or null", lambda v: v is None or isinstance(v, str)),
     "data_time": ("text or a number", lambda v: v is None or isinstance(v, str)
                   or _is_number(v)),
     "rule_count": ("a whole number", lambda v: _is_int(v)),
@@ -129,5 +130,6 @@ def _is_int(value: Any) -> bool:
 
 def _numbers_object(value: Any, tables: bool = False) -> bool:
     return isinstance(value, dict) and all(
-        v is None or _is_number(v) or (tables and isinstance(v, dict))
-        for v in value.values())
+        v is None or _is_number(v) or (tables and (isinstance(v, dict) or (
+            k == "concern" and isinstance(v, str))))
+        for k, v in value.items())

@@ -79,6 +79,8 @@ def _facts(header: dict, shown: int, total: int | None) -> str:
         facts.append(f"{shown} of {total} rules shown")
     else:
         facts.append(f"{shown} rule{'' if shown == 1 else 's'}")
+    if header.get("concern") is not None:
+        facts.append(f"class of concern {_text(header['concern'])}, its rules first")
     if header.get("written_at"):
         facts.append(f"snapshot written {_text(header['written_at'])}")
     elif header.get("data_time"):
@@ -97,7 +99,8 @@ def rules_markdown(rules: Sequence[Rule | Simplified], header: dict,
         the table).
     header
         ``target`` (required), and ``records``, ``accuracy``, ``sequence``,
-        ``written_at`` when known.
+        ``written_at``, ``concern`` (with ``concern_records``, its records in the whole
+        tree, for the share each of its rules catches) when known.
     title
         Heading text; by default "Rules for <target>".
     total
@@ -111,17 +114,24 @@ def rules_markdown(rules: Sequence[Rule | Simplified], header: dict,
     if not rules:
         lines += ["No rules to show.", ""]
         return "\n".join(lines)
-    lines += [f"| Rule | When | Then {_cell(_text(target))} is | Confidence | Coverage | Records |",
-              "|---|---|---|---:|---:|---:|"]
+    concern = header.get("concern")
+    held = header.get("concern_records") or 0.0
+    catch = concern is not None and held > 0
+    lines += [f"| Rule | When | Then {_text(target)} is | Confidence | Coverage | Records |"
+              + (f" Catches of {_text(concern)} |" if catch else ""),
+              "|---|---|---|---:|---:|---:|" + ("---:|" if catch else "")]
     joined = []
     for item in rules:
         rule = item.rule if isinstance(item, Simplified) else item
         if isinstance(item, Simplified) and len(item.sources) > 1:
             joined.append(f"{rule.id} joins {', '.join(item.sources)}")
         outcome = "(no records yet)" if rule.predict is None else _data(rule.predict)
-        lines.append(f"| {rule.id} | {_cell(_when(rule))} | {_cell(outcome)} | "
-                     f"{_pct(rule.confidence)} | {_pct(rule.coverage)} | "
-                     f"{rule.records:,.0f} |")
+        row = (f"| {rule.id} | {_cell(_when(rule))} | {_cell(outcome)} | "
+               f"{_pct(rule.confidence)} | {_pct(rule.coverage)} | {rule.records:,.0f} |")
+        if catch:
+            row += (f" {_pct(rule.class_counts.get(concern, 0.0) / held)} |"
+                    if rule.predict == concern else " |")
+        lines.append(row)
     lines.append("")
     if joined:
         lines.append("Rules that decide alike and differ in one condition are joined; "
@@ -153,6 +163,9 @@ def diff_markdown(diff: RuleDiff, limit: int = 20) -> str:
              f"{counts['added']} new, {counts['removed']} gone, {counts['changed']} changed "
              f"({counts['thresholds_moved']} thresholds moved, {counts['outcome_changed']} "
              f"outcomes changed), {counts['unchanged']} kept.", ""]
+    if diff.concern is not None:
+        lines += [f"Class of concern {_text(diff.concern)}: {diff.concern_count()} of these "
+                  f"changes touch rules predicting it; they are listed first.", ""]
 
     def section(name: str, items: list[str]) -> None:
         if not items:

@@ -95,14 +95,26 @@ def _count(value: float) -> str:
 
 
 def render_text(rules: Sequence[Rule], header: dict) -> str:
-    """Rules as aligned text. ``header`` needs ``target``; ``records``, ``accuracy`` and
-    ``written_at`` are shown when present."""
+    """Rules as aligned text, in the order given. ``header`` needs ``target``;
+    ``records``, ``accuracy``, ``concern`` and ``written_at`` are shown when present
+    (``concern_records``: the class of concern's records in the whole tree, when only
+    some rules are shown)."""
     target = printable(str(header.get("target", "target")))
     lines = [f"sapwood rules for {target}"]
+    concern = header.get("concern")
+    classes = concern is not None and not any(r.estimate is not None for r in rules)
+    held = sum(r.class_counts.get(concern, 0.0) for r in rules) if classes else 0.0
+    held = header.get("concern_records") or held
     facts = []
     if header.get("records") is not None:
         facts.append(f"{_count(header['records'])} records learned")
-    if header.get("shown") is not None:
+    if header.get("shown") is not None and classes:
+        facts.append(f"{len(rules)} rules shown (the class of concern's first, then those "
+                     f"covering the most records)")
+    elif header.get("shown") is not None and concern is not None:
+        facts.append(f"{len(rules)} rules shown (those predicting the "
+                     f"{'highest' if concern == 'high' else 'lowest'} values)")
+    elif header.get("shown") is not None:
         facts.append(f"the {len(rules)} rules covering the most records")
     else:
         facts.append(f"{len(rules)} rule" + ("s" if len(rules) != 1 else ""))
@@ -113,6 +125,12 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
     if header.get("written_at"):
         facts.append(str(header["written_at"]))
     lines.append(" | ".join(facts))
+    if classes:
+        lines.append(f"class of concern: {target} = {printable(str(concern))} (the rules "
+                     f"predicting it come first, those catching most of it first)")
+    elif concern is not None:
+        lines.append(f"rules predicting the {'highest' if concern == 'high' else 'lowest'} "
+                     f"{target} first")
     lines.append("")
     width = max((len(r.id) for r in rules), default=2) + 2
     pad = " " * width
@@ -141,6 +159,9 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
                                if v >= 0.5)
             if split:
                 detail += f" ({split})"
+            if classes and r.predict == concern and held > 0:
+                extra.append(f"catches {100 * r.class_counts.get(concern, 0.0) / held:.1f}% "
+                             f"of the {printable(str(concern))} records")
             if r.accuracy is not None:
                 extra.append(f"scored right {100 * r.accuracy:.1f}% of {_count(r.scored)}")
         lines.append(f"{pad}     {detail}")

@@ -202,7 +202,7 @@ _FINGERPRINT_NAMES = {
     "snapshot_every": "--snapshot-every", "metrics": "--metrics", "events": "--events",
     "predictions": "--predictions", "quarantine": "--quarantine", "labels": "--labels",
     "label_window": "--label-window", "label_seconds": "--label-seconds",
-    "id_field": "--id-field", "header": "--header",
+    "id_field": "--id-field", "header": "--header", "concern": "--concern",
 }
 
 
@@ -236,7 +236,7 @@ def job_fingerprint(job) -> dict:
         "quarantine": _path(job.quarantine_path),
         "labels": [_place(s) for s in job.labels], "label_window": job.label_window,
         "label_seconds": job.label_seconds, "id_field": job.id_field,
-        "header": job.header,
+        "header": job.header, "concern": job.concern,
     })
 
 

@@ -285,6 +285,10 @@ class Encoder:
         """Class labels in code order (empty for regression)."""
         return list(self._classes.labels)
 
+    def class_code(self, label: str) -> int | None:
+        """The code of class ``label``, None if not seen yet."""
+        return self._classes.codes.get(label)
+
     @property
     def categories(self) -> dict[str, list[str]]:
         """Category labels in code order, per category feature (with

@@ -116,8 +116,9 @@ class LearnRun:
         self.schema = schema
         self.encoder = Encoder(schema, job.category_cap, job.class_cap)
         settings = job.learner_settings(schema.task)
+        job.check_concern(schema.task)
         self.task = TASKS[schema.task].create(schema, settings, job.window, job.fading,
-                                              job.metrics_every)
+                                              job.metrics_every, concern=job.concern)
 
     @property
     def model(self):
@@ -374,7 +375,7 @@ class LearnRun:
                                  self.model, self.encoder.categories,
                                  task.settings.detector)
             judged = scored if arrival is None else arrival.part(part)
-            rows = task.update_score(batch.y[part], judged, self.encoder)
+            rows = task.update_score(batch.y[part], judged, self.encoder, self.job.concern)
             if arrival is None:
                 self.emit_predictions(batch, part, scored)
             for row in rows:
@@ -445,7 +446,7 @@ class LearnRun:
         """Write the learner, encoder, schema and metrics to a model file."""
         save_model(path, self.schema, self.encoder, self.task, {
             "records": self.records, "quarantined": self.outputs.quarantine.count,
-            "target": self.job.target})
+            "target": self.job.target, "concern": self.job.concern})
         self.saved = True
 
     def summary(self) -> dict:

@@ -47,7 +47,9 @@ class LearnJob:
     :mod:`stream.run.delayed_labels`).
 
     ``header`` names the columns of CSV and TSV files instead of their header lines
-    (to tell apart columns the file names alike). Memory: ``category_cap`` distinct values of each category field are kept apart,
+    (to tell apart columns the file names alike). ``concern`` names the class of concern
+    (a class label; ``high`` or ``low`` for a numeric target), which views lead with;
+    without it a class target's rarest class among the first 1,000 labels. Memory: ``category_cap`` distinct values of each category field are kept apart,
     later new values share one code; ``class_cap`` classes at most, a record with one
     more goes to the quarantine (see :class:`stream.run.encoding.Encoder`).
     """
@@ -89,6 +91,7 @@ class LearnJob:
     label_window: int = DEFAULT_LABEL_WINDOW
     label_seconds: float = 0.0
     id_field: str | None = None
+    concern: str | None = None
 
     def __post_init__(self) -> None:
         require_int("checkpoint interval", self.checkpoint_every, 0)
@@ -123,6 +126,12 @@ class LearnJob:
         require_int("window", self.window, 1)
         if (self.snapshot_every or self.snapshot_seconds) and not self.snapshot_dir:
             raise ConfigError("a snapshot interval needs a snapshot directory")
+
+    def check_concern(self, task: str) -> None:
+        """A numeric target's concern must be ``high`` or ``low``."""
+        if task == "regression" and self.concern not in (None, "high", "low"):
+            raise ConfigError(f"--concern for a numeric target must be 'high' or 'low' (the "
+                              f"rules to show first), got {self.concern!r}")
 
     def learner_settings(self, task: str):
         """The settings the learner of ``task`` runs with."""

@@ -2,10 +2,11 @@
 
 Contents
 --------
-ClassificationScore(window, fading, log_every)
+ClassificationScore(window, fading, log_every, concern_after)
     Accuracy, Cohen's kappa, kappa-M, balanced accuracy, per-class precision / recall /
     F1 and the confusion matrix, each cumulative and over a sliding window of the last
-    ``window`` records; fading-factor accuracy.
+    ``window`` records; fading-factor accuracy; precision, recall and F1 of the class of
+    concern (declared, or the rarest class among the first ``concern_after`` labels).
 RegressionScore(window, fading, log_every)
     MAE, RMSE and R^2, cumulative and over the sliding window; fading-factor MAE.
 
@@ -23,6 +24,10 @@ Definitions
   labels seen *before* the record (ties, and the very first record, go to the lowest
   code). The windowed kappa-M scores that same predictor over the window's records.
 - Balanced accuracy: mean recall over the classes with at least one true record.
+- Class of concern: the class the operator watches (a fault, an alarm, a reject). If not
+  declared, the rarest class among the first ``concern_after`` labels (ties to the lowest
+  code), chosen at exactly that label whatever the batches, and kept from then on. Its
+  columns in log rows are None before it is known.
 - F1 of a class: 2 tp / (2 tp + fp + fn), which equals 2PR / (P + R) where both exist.
 - Fading factor (Gama, Sebastiao & Rodrigues, Machine Learning 2013):
   S_i = L_i + a S_{i-1}, N_i = 1 + a N_{i-1}, P_i = S_i / N_i.
@@ -53,8 +58,13 @@ _STATE_VERSION = 1
 
 CLASSIFICATION_ROW = ("records", "accuracy", "kappa", "kappa_m", "balanced_accuracy",
                       "window_accuracy", "window_kappa", "window_kappa_m",
-                      "window_balanced_accuracy", "fading_accuracy")
+                      "window_balanced_accuracy", "fading_accuracy",
+                      "concern_precision", "concern_recall", "concern_f1",
+                      "window_concern_precision", "window_concern_recall", "window_concern_f1")
 """Keys of a classification log row, in the column order of the compiled kernel."""
+
+CONCERN_AFTER = 1000
+"""Labels seen before the rarest class becomes the class of concern (when none is declared)."""
 
 REGRESSION_ROW = ("records", "mae", "rmse", "r2", "window_mae", "window_rmse", "window_r2",
                   "fading_mae")
@@ -92,12 +102,30 @@ def _class_headline(cm, true_n, pred_n, correct, majority_hits, n, dest, at):
 
 
 @njit(cache=True)
+def _class_focus(cm, true_n, pred_n, c, dest, at):
+    """Write precision, recall and F1 of class ``c`` into dest[at:at + 3] (NaN if undefined)."""
+    nan = np.nan
+    if c < 0 or c >= true_n.shape[0]:
+        for j in range(3):
+            dest[at + j] = nan
+        return
+    tp = float(cm[c, c])
+    support = float(true_n[c])
+    predicted = float(pred_n[c])
+    dest[at] = tp / predicted if predicted > 0 else nan
+    dest[at + 1] = tp / support if support > 0 else nan
+    dest[at + 2] = 2.0 * tp / (support + predicted) if support + predicted > 0 else nan
+
+
+@njit(cache=True)
 def _classification_pass(y, p, cm, true_n, pred_n, wcm, wtrue_n, wpred_n,
-                         ring_y, ring_p, ring_m, counts, fade, a, log_every, out):
+                         ring_y, ring_p, ring_m, counts, fade, a, log_every, out,
+                         concern, concern_from):
     """Score records y[i] vs p[i] one at a time, writing a row into ``out`` at log points.
 
     counts: [records, correct, majority class, majority hits, ring position,
-    window correct, window majority hits]; fade: [S, N].
+    window correct, window majority hits]; fade: [S, N]. Rows at records before
+    ``concern_from`` leave the class of concern's columns undefined.
     """
     width = ring_y.shape[0]
     n = counts[0]
@@ -157,6 +185,9 @@ def _classification_pass(y, p, cm, true_n, pred_n, wcm, wtrue_n, wpred_n,
             _class_headline(wcm, wtrue_n, wpred_n, wcorrect, wmajority_hits,
                             min(n, width), dest, 5)
             dest[9] = s / norm
+            c = concern if n >= concern_from else -1
+            _class_focus(cm, true_n, pred_n, c, dest, 10)
+            _class_focus(wcm, wtrue_n, wpred_n, c, dest, 13)
             row += 1
     counts[0] = n
     counts[1] = correct
@@ -351,6 +382,16 @@ def _confusion_of(codes_y: np.ndarray, codes_p: np.ndarray, n_classes: int) -> n
     return cm
 
 
+def rarest_class(counts: np.ndarray) -> int:
+    """Code of the least frequent class among those seen (count > 0); ties go to the
+    lowest code; 0 when none is seen."""
+    counts = np.asarray(counts)
+    seen = np.flatnonzero(counts > 0)
+    if seen.size == 0:
+        return 0
+    return int(seen[np.argmin(counts[seen])])
+
+
 def _per_class(cm: np.ndarray, labels: list[str]) -> dict:
     """precision, recall, F1 and support per label; None where the ratio is undefined."""
     out = {}
@@ -378,6 +419,9 @@ class ClassificationScore:
         Fading factor a in (0, 1] of the fading accuracy; 1 gives the plain mean.
     log_every
         Emit a log row every this many records; 0 for none.
+    concern_after
+        Labels after which the rarest class so far becomes the class of concern, unless
+        :meth:`declare_concern` named one first; 0: only a declared class.
 
     Examples
     --------
@@ -390,8 +434,13 @@ class ClassificationScore:
     [[2, 0], [1, 1]]
     """
 
-    def __init__(self, window: int = 1000, fading: float = 0.999, log_every: int = 0) -> None:
+    def __init__(self, window: int = 1000, fading: float = 0.999, log_every: int = 0,
+                 concern_after: int = CONCERN_AFTER) -> None:
         self.window, self.fading, self.log_every = _settings(window, fading, log_every)
+        self.concern_after = require_int("labels before choosing the class of concern",
+                                         concern_after, 0)
+        self.concern = -1        # class code of concern; -1 while not known
+        self.concern_from = 0    # first record whose log row carries the concern's figures
         self.n_classes_ = 0
         self.cm_ = np.zeros((0, 0), dtype=np.int64)
         self.window_cm_ = np.zeros((0, 0), dtype=np.int64)
@@ -446,14 +495,35 @@ class ClassificationScore:
         y = _check_codes("true", y, n_classes, first)
         pred = _check_codes("predicted", pred, n_classes, first, lowest=-1)
         self._grow(n_classes)
+        self._choose_concern(y)
         out = np.empty((_log_rows_due(self.records, y.shape[0], self.log_every),
                         len(CLASSIFICATION_ROW)))
         if y.shape[0]:
             _classification_pass(y, pred, self.cm_, self._true_n, self._pred_n,
                                  self.window_cm_, self._wtrue_n, self._wpred_n,
                                  self._ring_y, self._ring_p, self._ring_m,
-                                 self._counts, self._fade, self.fading, self.log_every, out)
+                                 self._counts, self._fade, self.fading, self.log_every, out,
+                                 self.concern, self.concern_from)
         return [_row(CLASSIFICATION_ROW, values) for values in out]
+
+    def declare_concern(self, code: int) -> None:
+        """Make class ``code`` the class of concern from the next record on (a declared
+        class, once it has a code); a class already of concern stays."""
+        code = require_int("class of concern", code, 0)
+        if self.concern < 0:
+            self.concern = code
+            self.concern_from = self.records + 1
+
+    def _choose_concern(self, y: np.ndarray) -> None:
+        """The rarest class among the first ``concern_after`` labels, at exactly that label
+        (so the choice and the log rows do not depend on how the stream is batched)."""
+        if self.concern >= 0 or self.concern_after == 0 \
+                or self.records + y.shape[0] < self.concern_after:
+            return
+        upto = max(self.concern_after - self.records, 0)
+        counts = self._true_n + np.bincount(y[:upto], minlength=self.n_classes_)
+        self.concern = rarest_class(counts)
+        self.concern_from = max(self.concern_after, self.records + 1)
 
     def _headline(self) -> np.ndarray:
         c = self._counts
@@ -463,6 +533,8 @@ class ClassificationScore:
         _class_headline(self.window_cm_, self._wtrue_n, self._wpred_n, c[5], c[6],
                         min(c[0], self.window), values, 5)
         values[9] = self._fade[0] / self._fade[1] if c[0] else np.nan
+        _class_focus(self.cm_, self._true_n, self._pred_n, self.concern, values, 10)
+        _class_focus(self.window_cm_, self._wtrue_n, self._wpred_n, self.concern, values, 13)
         return values
 
     def result(self, labels: Sequence[str]) -> dict:
@@ -479,6 +551,7 @@ class ClassificationScore:
         wcm = np.pad(self.window_cm_, ((0, extra), (0, extra)))
         out = _row(CLASSIFICATION_ROW, self._headline())
         out["window_records"] = min(self.records, self.window)
+        out["concern"] = labels[self.concern] if 0 <= self.concern < len(labels) else None
         out["per_class"] = _per_class(cm, labels)
         out["confusion"] = {"labels": labels, "matrix": cm.tolist()}
         out["window_per_class"] = _per_class(wcm, labels)
@@ -500,6 +573,8 @@ class ClassificationScore:
             "confusion": self.cm_.copy(), "true_counts": self._true_n.copy(),
             "ring_true": self._ring_y.copy(), "ring_pred": self._ring_p.copy(),
             "ring_majority_hit": self._ring_m.copy(),
+            "concern": self.concern, "concern_from": self.concern_from,
+            "concern_after": self.concern_after,
         }
 
     @classmethod
@@ -507,8 +582,16 @@ class ClassificationScore:
         """Rebuild a scorer from :meth:`state_dict` output (also as loaded from .npz)."""
         _check_kind(state, "classification_score")
         score = cls(_scalar(state, "window", int), _scalar(state, "fading", float),
-                    _scalar(state, "log_every", int))
+                    _scalar(state, "log_every", int),
+                    _scalar(state, "concern_after", int) if "concern_after" in state
+                    else CONCERN_AFTER)  # states written before the class of concern
         k = _scalar(state, "n_classes", int)
+        if "concern" in state:
+            score.concern = _scalar(state, "concern", int)
+            score.concern_from = _scalar(state, "concern_from", int)
+            if score.concern >= max(k, 1) or score.concern < -1:
+                raise ModelFileError(f"metrics state: class of concern {score.concern} is "
+                                     f"not one of the {k} classes")
         n = _scalar(state, "records", int)
         w = score.window
         filled = min(n, w)

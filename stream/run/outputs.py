@@ -21,6 +21,7 @@ import pandas as pd
 from connectors.broker_payloads import scheme_of
 from connectors.quarantine import QuarantineWriter
 from stream.errors import ConfigError, ModelFileError
+from stream.rules.concern import concern_order
 from stream.rules.rule import rules_payload
 from stream.rules.text import conditions_text, render_text
 from stream.tree.paths import node_conditions
@@ -258,7 +259,9 @@ class RunOutputs:
 
     def write_snapshot(self, rules, header: dict, result: dict, headline: dict,
                        tree_facts: dict, learned: int) -> None:
-        """Rules and facts as a snapshot (JSON plus text) taken at ``learned`` records."""
+        """Rules and facts as a snapshot (JSON plus text) taken at ``learned`` records,
+        the rules predicting the class of concern first."""
+        rules = concern_order(rules, header.get("concern"))
         payload = rules_payload(rules, {k: v for k, v in header.items() if k != "records"})
         payload["metrics"] = result
         payload["tree"] = tree_facts

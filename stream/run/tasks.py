@@ -6,7 +6,7 @@ and the rule readers work with either task through this interface:
 
 learn(X, y, encoder) -> Scored-like    score each record, then learn it
 predict(X) -> Scored-like              score without learning
-update_score(y, scored, encoder) -> metric log rows for this stretch
+update_score(y, scored, encoder, concern) -> metric log rows for this stretch
 prediction_columns(scored, encoder) -> {column: array} for the predictions sink
 rules(categories) -> list[Rule]        the tree as rules
 result(encoder) -> dict                summary figures (accuracy/kappa... or mae/rmse/r2)
@@ -34,7 +34,11 @@ from stream.rules.classify import extract_rules
 from stream.rules.regress import extract_regression_rules
 from stream.rules.rule import Rule, rule_id
 
-from .metrics import ClassificationScore, RegressionScore
+from .metrics import CONCERN_AFTER, ClassificationScore, RegressionScore
+
+CONCERN_FIGURES = ("concern_precision", "concern_recall", "concern_f1",
+                   "window_concern_precision", "window_concern_recall", "window_concern_f1")
+"""The class of concern's figures in the summary (cumulative, then over the window)."""
 
 # options shared by both tasks: CLI name -> settings field
 _SHARED = {"grace_period": "grace_period", "delta": "delta", "tie_threshold": "tie_threshold",
@@ -86,10 +90,14 @@ class ClassificationTask:
 
     @classmethod
     def create(cls, schema, options: dict, window: int, fading: float,
-               log_every: int) -> "ClassificationTask":
+               log_every: int, concern: str | None = None) -> "ClassificationTask":
+        """``concern``: the class of concern the user declared (None: the rarest class
+        among the first labels, see :class:`ClassificationScore`)."""
         settings = options if isinstance(options, TreeSettings) else classifier_settings(options)
+        concern_after = 0 if concern is not None else CONCERN_AFTER
         return cls(TreeClassifier(schema.feature_names, schema.feature_kinds, settings),
-                   ClassificationScore(window, fading, log_every=log_every))
+                   ClassificationScore(window, fading, log_every=log_every,
+                                       concern_after=concern_after))
 
     @property
     def records_learned(self) -> int:
@@ -105,7 +113,11 @@ class ClassificationTask:
     def predict(self, X):
         return self.model.predict(X)
 
-    def update_score(self, y, scored, encoder) -> list[dict]:
+    def update_score(self, y, scored, encoder, concern: str | None = None) -> list[dict]:
+        if concern is not None and self.score.concern < 0:
+            code = encoder.class_code(concern)
+            if code is not None:
+                self.score.declare_concern(code)
         return self.score.update(y, scored.pred, max(len(encoder.classes), 1))
 
     def prediction_columns(self, scored, encoder) -> dict:
@@ -122,12 +134,12 @@ class ClassificationTask:
     @staticmethod
     def headline(result: dict) -> dict:
         return {"accuracy": result["accuracy"], "kappa": result["kappa"],
-                "window_accuracy": result["window_accuracy"]}
+                "window_accuracy": result["window_accuracy"], "concern": result["concern"]}
 
     def summary_figures(self, result: dict) -> dict:
         return {k: result[k] for k in ("accuracy", "kappa", "kappa_m", "balanced_accuracy",
-                                       "window_accuracy", "fading_accuracy", "per_class",
-                                       "confusion")}
+                                       "window_accuracy", "fading_accuracy", "concern",
+                                       *CONCERN_FIGURES, "per_class", "confusion")}
 
     def take_events(self):
         return self.model.take_events()
@@ -150,7 +162,7 @@ class RegressionTask:
 
     @classmethod
     def create(cls, schema, options: dict, window: int, fading: float,
-               log_every: int) -> "RegressionTask":
+               log_every: int, concern: str | None = None) -> "RegressionTask":
         settings = options if isinstance(options, RegressionSettings) \
             else regressor_settings(options)
         return cls(TreeRegressor(schema.feature_names, schema.feature_kinds, settings),
@@ -170,7 +182,7 @@ class RegressionTask:
     def predict(self, X):
         return self.model.predict(X)
 
-    def update_score(self, y, scored, encoder) -> list[dict]:
+    def update_score(self, y, scored, encoder, concern: str | None = None) -> list[dict]:
         return self.score.update(y, scored.pred)
 
     def prediction_columns(self, scored, encoder) -> dict:

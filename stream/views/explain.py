@@ -31,6 +31,7 @@ import numpy as np
 from connectors.base import RawBatch, Reject
 from connectors.sources import open_sources
 from stream.errors import ConfigError, InputError
+from stream.rules.concern import precision
 from stream.rules.classify import extract_rules
 from stream.rules.regions import region_of
 from stream.rules.rule import Rule, rule_id
@@ -249,14 +250,19 @@ def _pct(value: float) -> str:
     return f"{100 * value:.1f}%"
 
 
-def render_explanation(item: Explanation, target: str) -> str:
-    """An explanation as text for people."""
+def render_explanation(item: Explanation, target: str, concern: str | None = None) -> str:
+    """An explanation as text for people; with a class of concern, the share of the
+    leaf's records in that class comes second."""
     rule = item.rule
     where = item.origin if item.origin.startswith("record ") else \
         f"{item.origin} line {item.line}"
     predicted = "nothing (no records learned yet)" if item.predicted is None else \
         f"{target} = {item.predicted}"
     lines = [f"{where}: {predicted}, confidence {_pct(item.confidence)}, by rule {rule.id}"]
+    if concern is not None and rule.estimate is None:
+        lines.append(f"  class of concern {concern}: {_pct(precision(rule, concern))} of the "
+                     f"rule's records" + (" (the rule predicts it)"
+                                          if rule.predict == concern else ""))
     if rule.leaf_model == "naive_bayes":
         lines.append("  (naive Bayes weighs the record's values within the rule; the "
                      "rule's majority is " + str(rule.predict) + ")")

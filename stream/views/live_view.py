@@ -26,8 +26,9 @@ import time
 from datetime import datetime, timezone
 from typing import Callable, Sequence, TextIO
 
-from stream.shown import for_terminal
+from stream.shown import for_terminal, printable
 from stream.errors import SapwoodError
+from stream.rules.concern import concern_of, top_rules
 from stream.rules.rule import Rule, rules_from_payload
 from stream.rules.text import CAUTION, rule_conditions_text
 from stream.run.snapshots import SnapshotStore
@@ -173,7 +174,8 @@ def render_frame(state: WatchState, width: int = 100, height: int = 40, now: str
     """The view as lines of at most ``width`` characters, at most ``height`` lines.
 
     Sections, top to bottom: title, run facts, metrics with trend lines, tree size,
-    recent drift events, rules by coverage (as many as fit), the safety line.
+    recent drift events, rules (those predicting the class of concern first, then by
+    coverage; as many as fit), the safety line.
     """
     width = max(width, 40)
     doc = state.snapshot or {}
@@ -197,7 +199,15 @@ def render_frame(state: WatchState, width: int = 100, height: int = 40, now: str
 
     spark = max(min(width - 52, 40), 8)
     metrics = doc.get("metrics", {})
+    concern = doc.get("concern")
     if rows:
+        if concern is not None and any(r.get("concern_recall") is not None for r in rows):
+            series = [r.get("window_concern_recall") for r in rows]
+            lines.append(f"class of concern {printable(str(concern))}: recall "
+                         f"{_pct(last.get('concern_recall'))} (last window "
+                         f"{_pct(last.get('window_concern_recall'))}), precision "
+                         f"{_pct(last.get('concern_precision'))}  "
+                         f"{sparkline(series, spark, blocks)}  {_trend(series[-spark:], True)}")
         for label, key, window_key, percent in (
                 ("accuracy", "accuracy", "window_accuracy", True),
                 ("kappa", "kappa", "window_kappa", False),
@@ -236,9 +246,13 @@ def render_frame(state: WatchState, width: int = 100, height: int = 40, now: str
         footer.insert(0, f"(could not read everything this time: {state.problem})")
     room = height - len(lines) - len(footer) - 1
     if state.rules and room > 0:
-        ranked = sorted(state.rules, key=lambda r: (-r.coverage, r.id))
-        show = ranked[:room]
-        lines.append(f"rules by coverage ({len(show)} of {len(ranked)}):")
+        concern = concern_of(state.snapshot or {}, state.rules)
+        ranked = state.rules
+        show = top_rules(ranked, concern, room) if concern is not None else \
+            sorted(ranked, key=lambda r: (-r.coverage, r.id))[:room]
+        lines.append(f"rules, class of concern {printable(str(concern))} first "
+                     f"({len(show)} of {len(ranked)}):" if concern is not None else
+                     f"rules by coverage ({len(show)} of {len(ranked)}):")
         id_width = max(len(r.id) for r in show)
         class_width = max(len(str(r.predict)) for r in show)
         for r in show:

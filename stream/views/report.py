@@ -24,6 +24,7 @@ from html import escape
 from typing import Sequence
 
 from stream.errors import InputError
+from stream.rules.concern import catches, concern_of, concern_order, leads, top_rules
 from stream.rules.diff import RuleDiff, diff_rules, fate_note, origin_note
 from stream.rules.rule import Rule, rules_from_payload
 from stream.rules.simplify import simplify
@@ -133,6 +134,7 @@ th{background:#eef1f3}td.n{text-align:right;white-space:nowrap}
 code{font-family:ui-monospace,"SFMono-Regular",Menlo,Consolas,monospace;font-size:.92em}
 details{margin:10px 0}summary{cursor:pointer;color:#1f5f99}
 ul.changes li{margin:3px 0}
+tr.concern td:first-child{border-left:4px solid #d9731a}
 """
 
 _METRIC_LINES = (
@@ -142,6 +144,9 @@ _METRIC_LINES = (
     ("kappa", "kappa", "kappa", ""),
     ("kappa", "window_kappa", "kappa, last window", "5 3"),
     ("kappa", "kappa_m", "kappa-M", "1 2"),
+    ("concern", "concern_recall", "recall (share of the class caught)", ""),
+    ("concern", "concern_precision", "precision (share of its predictions right)", "5 3"),
+    ("concern", "window_concern_recall", "recall, last window", "1 2"),
 )
 
 
@@ -206,26 +211,37 @@ def _drift_text(rule: Rule) -> str:
     return drift_words(rule)
 
 
-def _rules_table(rules: Sequence[Rule], target: str, sources: dict | None = None) -> str:
+def _rules_table(rules: Sequence[Rule], target: str, sources: dict | None = None,
+                 concern: str | None = None) -> str:
     note = ""
+    share = catches(rules, concern)
+    rules = concern_order(rules, concern)
     if len(rules) > MAX_TABLE_RULES:
-        kept = {id(r) for r in sorted(rules, key=lambda r: -r.coverage)[:MAX_TABLE_RULES]}
-        note = (f"<p class=meta>The {MAX_TABLE_RULES} rules covering the most records of "
-                f"{len(rules)}; <code>sapwood rules</code> lists them all.</p>")
-        rules = [r for r in rules if id(r) in kept]
+        shown = top_rules(rules, concern, MAX_TABLE_RULES)
+        which = ("those predicting the class of concern, then those covering the most "
+                 "records" if share else "those covering the most records")
+        note = (f"<p class=meta>{MAX_TABLE_RULES} rules of {len(rules)}: {which}; "
+                f"<code>sapwood rules</code> lists them all.</p>")
+        rules = shown
     # drift state per rule, when the rules carry one (stable / watching / replaced)
     drift = any(getattr(r, "drift", "stable") != "stable" for r in rules)
     head = ("<tr><th>rule</th><th>when</th><th>then " + escape(target) + "</th>"
             "<th>confidence</th><th>coverage</th><th>records</th><th>scored right</th>"
+            + (f"<th>catches of {escape(str(concern))}</th>" if share else "")
             + ("<th>drift</th>" if drift else "")
             + ("<th>stands for</th>" if sources else "") + "</tr>")
     body = []
     for r in rules:
         accuracy = "" if r.accuracy is None else _pct(r.accuracy)
         outcome = "(no records yet)" if r.predict is None else r.predict
-        extra = f"<td>{escape(_drift_text(r))}</td>" if drift else ""
+        extra = ""
+        if share:
+            extra += (f"<td class=n>{_pct(share.get(r.id, 0.0))}</td>" if leads(r, concern)
+                      else "<td></td>")
+        extra += f"<td>{escape(_drift_text(r))}</td>" if drift else ""
         extra += f"<td>{escape(', '.join(sources[r.id]))}</td>" if sources else ""
-        body.append(f"<tr><td><code>{escape(r.id)}</code></td>"
+        lead = ' class="concern"' if leads(r, concern) else ""
+        body.append(f"<tr{lead}><td><code>{escape(r.id)}</code></td>"
                     f"<td><code>{escape(rule_conditions_text(r).replace('  (', ' ('))}</code></td>"
                     f"<td>{escape(outcome)}</td><td class=n>{_pct(r.confidence)}</td>"
                     f"<td class=n>{_pct(r.coverage)}</td><td class=n>{r.records:,.0f}</td>"
@@ -243,6 +259,10 @@ def _diff_html(diff: RuleDiff, target: str, limit: int = 40) -> str:
              f"<b>{counts['changed']}</b> changed ({counts['thresholds_moved']} thresholds "
              f"moved, {counts['outcome_changed']} outcomes changed), "
              f"<b>{counts['unchanged']}</b> kept.</p>"]
+    if diff.concern is not None:
+        parts.append(f"<p>{diff.concern_count()} of these changes touch rules predicting the "
+                     f"class of concern ({escape(str(diff.concern))}); they are listed "
+                     "first.</p>")
 
     def rule_item(rule: Rule, note: str) -> str:
         outcome = "no records yet" if rule.predict is None else f"{target} = {rule.predict}"
@@ -294,8 +314,10 @@ def _events_table(events: Sequence[dict], limit: int = 200) -> str:
             "<th>where in the tree</th></tr>" + "".join(rows) + "</table>")
 
 
-def render_report(data: ReportData, generated_at: str, title: str | None = None) -> str:
-    """The whole page as HTML text (pure: the same data and time give the same bytes)."""
+def render_report(data: ReportData, generated_at: str, title: str | None = None,
+                  concern: str | None = None) -> str:
+    """The whole page as HTML text (pure: the same data and time give the same bytes).
+    ``concern`` overrides the run's class of concern, whose rules lead the tables."""
     first, last_doc = data.snapshots[0], data.snapshots[-1]
     target = last_doc.get("target", "target")
     rows = data.metrics or _snapshot_rows(data.snapshots)
@@ -307,6 +329,7 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
     churn = churn_table(data.snapshots, kept)
     rules = kept.get("last") or rules_from_payload(last_doc)
     simple = simplify(rules)
+    concern = concern_of(last_doc, rules, concern)
 
     charts = []
     accuracy = _metric_series(rows, "accuracy")
@@ -317,6 +340,14 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
             "Each record is scored before it is learned. Cumulative accuracy since the "
             "start, over the last window of records, and fading (recent records weigh "
             "more). Vertical lines mark drift events."))
+    focus = _metric_series(rows, "concern")
+    if focus and concern is not None:
+        charts.append(("concern-chart", line_chart(
+            focus, "concern-chart", f"Class of concern ({concern}) over records", "records",
+            "share", markers, percent=True),
+            f"Recall: the share of {concern} records the tree predicted as {concern} "
+            "before learning them; precision: the share of its predictions of "
+            f"{concern} that were right."))
     kappa = _metric_series(rows, "kappa")
     if kappa:
         charts.append(("kappa-chart", line_chart(
@@ -374,17 +405,21 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
         out.append(f'<figure data-chart="{plot_id}">{svg}<figcaption>{escape(caption)}'
                    "</figcaption></figure>")
     out.append(f"<h2>Current rules ({len(rules)})</h2>")
-    out.append(f'<p class="meta">Snapshot #{last_doc["sequence"]}, sorted by predicted class, '
-               "then coverage. Coverage is the share of learned records a rule holds; "
-               "confidence the share of its records in its class.</p>")
-    out.append(_rules_table(rules, target))
+    lead = (f"the rules predicting the class of concern ({escape(str(concern))}) first, those "
+            "catching most of it first (catches: the rule's share of all its records), "
+            "then the rest by predicted class and coverage" if concern is not None
+            else "sorted by predicted class, then coverage")
+    out.append(f'<p class="meta">Snapshot #{last_doc["sequence"]}, {lead}. Coverage is the '
+               "share of learned records a rule holds; confidence the share of its records "
+               "in its class.</p>")
+    out.append(_rules_table(rules, target, concern=concern))
     if len(simple) < len(rules):
         out.append(f"<details><summary>The same decisions in {len(simple)} joined rules"
                    "</summary><p class=meta>Rules that predict the same class and differ "
                    "in one condition are joined; every record gets the same predicted "
                    "class as from the rules above.</p>")
         out.append(_rules_table([s.rule for s in simple], target,
-                                {s.rule.id: s.sources for s in simple}))
+                                {s.rule.id: s.sources for s in simple}, concern))
         out.append("</details>")
     if len(data.snapshots) > 1:
         if len(data.snapshots) == 2 and kept.get("last_diff") is not None:
@@ -394,7 +429,7 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
             diff = diff_rules(kept.get("first") or rules_from_payload(first), rules,
                               header_of(first), header_of(last_doc))
         out.append("<h2>From the first snapshot to the last</h2>")
-        out.append(_diff_html(diff, target))
+        out.append(_diff_html(diff.concern_first(concern), target))
     out.append(f"<h2>Drift events ({len(data.events)})</h2>")
     out.append(_events_table(data.events) if data.events else
                '<p class="meta">No drift events' + (" were recorded." if "drift events"
@@ -408,8 +443,8 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None)
 
 
 def write_report(path: str, data: ReportData, generated_at: str,
-                 title: str | None = None) -> int:
+                 title: str | None = None, concern: str | None = None) -> int:
     """Write the page atomically; returns its size in bytes."""
-    html = render_report(data, generated_at, title)
+    html = render_report(data, generated_at, title, concern)
     write_atomic(path, html)
     return len(html.encode("utf-8"))

@@ -14,7 +14,8 @@ from stream.run.model_file import MAGIC
 from stream.run.snapshots import SnapshotStore
 
 _HEADER_KEYS = ("target", "task", "classes", "records", "accuracy", "kappa",
-                "window_accuracy", "mae", "rmse", "r2", "data_time", "written_at", "sequence")
+                "window_accuracy", "mae", "rmse", "r2", "data_time", "written_at", "sequence",
+                "concern")
 
 
 def read_snapshot(store: SnapshotStore, sequence: int) -> dict:
@@ -47,6 +48,8 @@ def load_rules(path: str) -> tuple[dict, list[Rule]]:
         header = {"target": saved.schema.target, "task": task.name,
                   "classes": saved.encoder.classes, "records": task.records_learned,
                   **task.headline(task.result(saved.encoder))}
+        if header.get("concern") is None and saved.facts.get("concern") is not None:
+            header["concern"] = saved.facts["concern"]  # declared, or a numeric target's
         return header, task.rules(saved.encoder.categories)
     try:
         with open(path, encoding="utf-8") as handle:
@@ -65,7 +68,7 @@ def _from_payload(payload: dict) -> tuple[dict, list[Rule]]:
 
 
 _SIDE_KEYS = ("target", "task", "classes", "records", "accuracy", "data_time",
-              "written_at", "sequence")
+              "written_at", "sequence", "concern")
 
 
 def header_of(document: dict) -> dict:

@@ -139,6 +139,29 @@ def test_learn_writes_a_summary_with_the_contract_keys(agrawal, tmp_path, capsys
     assert err.startswith("sapwood: learned 12,000 of 12,000 records in ")
 
 
+def test_the_class_of_concern_figures_equal_scikit_learns_on_the_predictions(agrawal,
+                                                                             tmp_path, capsys):
+    """Declared or chosen, the summary's precision / recall / F1 of the class of concern
+    are scikit-learn's on the run's own predictions (each made before learning the record)."""
+    from sklearn.metrics import precision_recall_fscore_support
+
+    truth = [row[-1] for row in csv.reader(agrawal.open())][1:]
+    for extra in ([], ["--concern", "0"]):
+        summary_path, predictions = tmp_path / "run.json", tmp_path / "p.csv"
+        code, _, err = run_main(["learn", agrawal, "--target", TARGET, "--summary",
+                                 summary_path, "--predictions", predictions, *extra], capsys)
+        assert code == 0, err
+        summary = json.loads(summary_path.read_text())
+        counts = {label: truth[:1000].count(label) for label in set(truth[:1000])}
+        concern = extra[1] if extra else min(counts, key=lambda k: (counts[k], k))
+        assert summary["concern"] == concern
+        predicted = [row["predicted"] for row in csv.DictReader(predictions.open())]
+        p, r, f, _ = precision_recall_fscore_support(truth, predicted, labels=[concern])
+        assert (summary["concern_precision"], summary["concern_recall"],
+                summary["concern_f1"]) == pytest.approx((p[0], r[0], f[0]), abs=1e-12)
+        assert f"class of concern {concern}: precision {100 * p[0]:.1f}%" in err
+
+
 def test_learn_help_lists_the_tree_settings(capsys):
     code, out, _ = run_main(["learn", "--help"], capsys)
     assert code == 0
@@ -165,6 +188,10 @@ USAGE_ERRORS = {
                    "sapwood: --kind takes FIELD=KIND with KIND one of numeric, category, id, "
                    "time, ignore, got 'car'"),
     "not an integer": (["--target", TARGET, "--grace-period", "many"], 1, None),
+    "class of concern of a number": (
+        ["--target", "salary", "--concern", "fault"], 1,
+        "sapwood: --concern for a numeric target must be 'high' or 'low' (the rules to show "
+        "first), got 'fault'"),
     "no target": ([], 1, None),
 }
 
@@ -485,24 +512,33 @@ def test_json_rules_round_trip(learned, tmp_path, capsys):
     assert text_from_json == text_from_model
 
 
-def test_top_keeps_the_rules_covering_the_most_records(learned, capsys):
+def test_top_keeps_the_class_of_concern_then_the_rules_covering_the_most(learned, capsys):
     model = learned / "model.sapwood"
     _, everything, _ = run_main(["rules", model, "--form", "json"], capsys)
-    rules = json.loads(everything)["rules"]
-    assert len(rules) > 3
-    widest = sorted(rules, key=lambda r: -r["coverage"])[:3]
-    code, top, _ = run_main(["rules", model, "--form", "json", "--top", "3"], capsys)
+    listing = json.loads(everything)
+    rules, concern = listing["rules"], listing["concern"]
+    # the run chose the rarer class among its first 1,000 labels
+    assert concern in listing["classes"]
+    leading = [r for r in rules if r["predict"] == concern]
+    assert 1 <= len(leading) and len(rules) > len(leading) + 1
+    n = len(leading) + 1
+    code, top, _ = run_main(["rules", model, "--form", "json", "--top", str(n)], capsys)
     assert code == 0
     shown = json.loads(top)
-    assert {r["id"] for r in shown["rules"]} == {r["id"] for r in widest}
-    assert shown["rule_count"] == shown["shown"] == 3
-    # shown in the listing's own order (class label, then coverage)
-    position = {r["id"]: i for i, r in enumerate(rules)}
-    assert [position[r["id"]] for r in shown["rules"]] == sorted(
-        position[r["id"]] for r in shown["rules"])
-    _, text, _ = run_main(["rules", model, "--top", "3"], capsys)
-    assert "the 3 rules covering the most records" in text.splitlines()[1]
-    assert sum(1 for line in text.splitlines() if " IF " in line) == 3
+    widest_other = max((r for r in rules if r["predict"] != concern),
+                       key=lambda r: r["coverage"])
+    assert [r["id"] for r in shown["rules"]] == [r["id"] for r in leading] + \
+        [widest_other["id"]]
+    assert shown["rule_count"] == shown["shown"] == n
+    # the listing leads with the concern's rules, most of the class caught first
+    caught = [r["class_counts"].get(concern, 0) for r in leading]
+    assert caught == sorted(caught, reverse=True)
+    assert rules[:len(leading)] == leading
+    _, text, _ = run_main(["rules", model, "--top", "1", "--concern", widest_other["predict"]],
+                          capsys)
+    assert "1 rules shown (the class of concern's first" in text.splitlines()[1]
+    assert f"class of concern: group = {widest_other['predict']}" in text
+    assert sum(1 for line in text.splitlines() if " IF " in line) == 1
 
 
 def test_rules_of_a_missing_path_exit_2(tmp_path, capsys):

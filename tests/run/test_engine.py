@@ -303,6 +303,7 @@ def test_empty_input_announces_only_outputs_it_wrote(tmp_path):
 # ---------------------------------------------------------------- snapshot directory
 
 def test_closing_snapshot_is_written_for_each_run(tmp_path):
+    from stream.rules.concern import concern_order
     from stream.views.rule_sources import load_rules
 
     snaps = tmp_path / "snaps"
@@ -314,7 +315,8 @@ def test_closing_snapshot_is_written_for_each_run(tmp_path):
         run_learn(LearnJob(sources=[str(path)], target="group", snapshot_dir=str(snaps),
                            snapshot_every=100_000, save_path=str(model)))
         _, newest = load_rules(str(snaps))
-        _, saved = load_rules(str(model))
+        header, saved = load_rules(str(model))
+        saved = concern_order(saved, header["concern"])  # snapshots lead with it
         assert [r.to_dict() for r in newest] == [r.to_dict() for r in saved], f"day {day}"
 
 

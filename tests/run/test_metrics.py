@@ -543,3 +543,76 @@ def test_bad_input_names_the_record_and_value():
     with pytest.raises(ValueError, match=r"^record 2: prediction nan is not a finite number$"):
         reg.update(np.array([1.0, 2.0]), np.array([1.0, np.nan]))
     assert reg.records == 0
+
+
+# ----------------------------------------------------------------- the class of concern
+
+def _sk_focus(y, pred, concern):
+    """precision, recall, F1 of one class by scikit-learn (zero_division -> None)."""
+    if not (y == concern).any() and not (pred == concern).any():
+        return None, None, None
+    p, r, f, _ = skm.precision_recall_fscore_support(y, pred, labels=[concern],
+                                                     zero_division=np.nan)
+    as_none = [None if np.isnan(v) else float(v) for v in (p[0], r[0], f[0])]
+    return tuple(as_none)
+
+
+@pytest.mark.parametrize("seed", [3, 11])
+def test_concern_is_the_rarest_class_at_exactly_the_1000th_label(seed):
+    """The rarest class among the first 1,000 labels, whatever the batches; its columns
+    in log rows equal scikit-learn's precision/recall/F1 at the same records (cumulative)
+    and over the window's records."""
+    y, pred = _class_stream(seed, 6_000, 4)
+    first = np.bincount(y[:1000], minlength=4)
+    seen = np.flatnonzero(first)
+    rarest = int(seen[np.argmin(first[seen])])
+    results = []
+    for cuts in ([6_000], [999, 2, 4_999], [1, 1_500, 4_499], list(np.full(60, 100))):
+        score = ClassificationScore(window=500, log_every=250)
+        rows, at = [], 0
+        for size in cuts:
+            rows += score.update(y[at:at + size], pred[at:at + size], 4)
+            at += size
+        assert score.concern == rarest
+        results.append((rows, score.result(["a", "b", "c", "d"])))
+    assert all(r == results[0] for r in results[1:])
+    rows, result = results[0]
+    assert result["concern"] == "abcd"[rarest]
+    for row in rows:
+        n = row["records"]
+        got = (row["concern_precision"], row["concern_recall"], row["concern_f1"])
+        if n < 1000:
+            assert got == (None, None, None)
+            continue
+        want = _sk_focus(y[:n], pred[:n], rarest)
+        assert got == pytest.approx(want, abs=1e-12)
+        window = slice(n - 500, n)
+        got_w = (row["window_concern_precision"], row["window_concern_recall"],
+                 row["window_concern_f1"])
+        assert got_w == pytest.approx(_sk_focus(y[window], pred[window], rarest), abs=1e-12)
+
+
+def test_a_declared_concern_counts_from_its_first_record_and_survives_a_checkpoint():
+    y, pred = _class_stream(5, 3_000, 3)
+    score = ClassificationScore(window=100, log_every=500, concern_after=0)
+    score.update(y[:700], pred[:700], 3)
+    assert score.concern == -1 and score.result(["a", "b", "c"])["concern"] is None
+    score.declare_concern(2)
+    score.declare_concern(0)  # a class once of concern stays
+    resumed = ClassificationScore.from_state(score.state_dict())
+    rows = score.update(y[700:], pred[700:], 3)
+    assert resumed.update(y[700:], pred[700:], 3) == rows
+    assert resumed.concern == score.concern == 2
+    want = _sk_focus(y, pred, 2)
+    last = rows[-1]
+    assert last["records"] == 3_000
+    assert (last["concern_precision"], last["concern_recall"], last["concern_f1"]) == \
+        pytest.approx(want, abs=1e-12)
+
+
+def test_rarest_class_ties_go_to_the_lowest_code_and_unseen_classes_do_not_count():
+    from stream.run.metrics import rarest_class
+
+    assert rarest_class(np.array([5, 0, 2, 2, 9])) == 2
+    assert rarest_class(np.array([0, 0])) == 0
+    assert rarest_class(np.array([0, 7])) == 1

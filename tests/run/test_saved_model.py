@@ -124,7 +124,8 @@ def test_the_model_file_holds_what_the_run_learned(saved, data):
     assert (model.model.n_leaves, model.model.depth) == (summary["leaves"], summary["depth"])
     result = model.score.result(model.encoder.classes)
     assert (result["accuracy"], result["kappa"]) == (summary["accuracy"], summary["kappa"])
-    assert model.facts == {"records": 12_000, "quarantined": 0, "target": "group"}
+    assert model.facts == {"records": 12_000, "quarantined": 0, "target": "group",
+                           "concern": None}
 
 
 def test_the_saved_tree_equals_one_trained_directly(saved, data):

@@ -89,8 +89,15 @@ def test_frame_shows_the_latest_metrics_events_and_rules(run, tmp_path):
     assert "age > 40.9" in events[1] and events[0].endswith("root")
     listed = [line.split()[0] for line in frame if line.startswith("  R")]
     document = state.snapshot
-    ranked = sorted(document["rules"], key=lambda r: (-r["coverage"], r["id"]))
-    assert listed == [r["id"] for r in ranked][:len(listed)] and listed
+    concern = document["concern"]
+    assert concern in document["classes"]  # the run chose one (the rarer class)
+    total = sum(r["class_counts"].get(concern, 0) for r in document["rules"])
+    leading = sorted((r for r in document["rules"] if r["predict"] == concern),
+                     key=lambda r: -r["class_counts"][concern] / total)
+    rest = sorted((r for r in document["rules"] if r["predict"] != concern),
+                  key=lambda r: (-r["coverage"], r["id"]))
+    assert listed and listed == [r["id"] for r in leading + rest][:len(listed)]
+    assert f"rules, class of concern {concern} first" in "\n".join(frame)
     assert frame[-1].startswith("Learned rules describe what the data showed so far")
     assert not state.refresh()  # nothing new
 

@@ -208,7 +208,12 @@ def test_rules_diff_and_safety_sections(run, page):
     entries = store.entries()
     first, last = store.load(entries[0]["sequence"]), store.load(entries[-1]["sequence"])
     table = re.search(r'<table class="rules">(.*?)</table>', page, re.S).group(1)
-    assert re.findall(r"<tr><td><code>(R\d+)</code>", table) == [r["id"] for r in last["rules"]]
+    # the snapshot keeps the rules in display order: the class of concern's first
+    assert re.findall(r'<tr(?: class="concern")?><td><code>(R\d+)</code>', table) == \
+        [r["id"] for r in last["rules"]]
+    leading = re.findall(r'<tr class="concern"><td><code>(R\d+)</code>', table)
+    assert leading == [r["id"] for r in last["rules"] if r["predict"] == last["concern"]]
+    assert leading
     counts = diff_rules(rules_from_payload(first), rules_from_payload(last), header_of(first),
                         header_of(last)).churn()
     assert (f"<b>{counts['added']}</b> new, <b>{counts['removed']}</b> gone, "
