@@ -16,7 +16,8 @@ from stream.errors import EXIT_USAGE, SapwoodError
 from stream.rules.text import CAUTION
 
 from .output import echo
-from .options import Whole, concern_option, form_option, format_option, option, parse_kinds
+from .options import (Whole, concern_option, exact_option, form_option, format_option, option,
+                      parse_kinds)
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -55,7 +56,8 @@ def score(model_path, sources, fmt, predictions_path, quarantine_path) -> None:
         help="Only this many rules: those predicting the class of concern first, then "
              "those covering the most records.")
 @concern_option()
-def rules(path, form, form_old, top, concern) -> None:
+@exact_option()
+def rules(path, form, form_old, top, concern, exact) -> None:
     """Print the rules of a saved MODEL, a snapshot file, or the newest snapshot of a
     snapshot directory, those predicting the class of concern first."""
     from stream.views.rule_sources import load_rules
@@ -77,7 +79,8 @@ def rules(path, form, form_old, top, concern) -> None:
     else:
         from stream.rules.text import render_text
 
-        echo(render_text(rule_list, {**header, "concern_records": held}), nl=False)
+        echo(render_text(rule_list, {**header, "concern_records": held, "exact": exact}),
+             nl=False)
 
 
 @cli.command()

@@ -179,6 +179,13 @@ def concern_option() -> Callable:
                        "class of concern); high or low for a numeric target.")
 
 
+def exact_option() -> Callable:
+    """A view's ``--exact``: thresholds in full rather than in the data's resolution."""
+    return option("--exact", is_flag=True,
+                  help="Print thresholds in full (by default they are cut to the decimals "
+                       "the field's values carry, which selects the same records).")
+
+
 def form_option(forms: tuple[str, ...], help: str, group: str | None = None) -> Callable:
     """``--form``: the form of what a command prints (with ``--format`` kept hidden for a
     release, under its old meaning)."""

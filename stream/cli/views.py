@@ -20,8 +20,8 @@ from stream.errors import ConfigError, InputError
 from stream.rules.text import CAUTION
 
 from .output import echo
-from .options import (Number, Whole, concern_option, form_option, format_option, option,
-                      renamed)
+from .options import (Number, Whole, concern_option, exact_option, form_option, format_option,
+                      option, renamed)
 
 
 
@@ -44,7 +44,8 @@ def _iso_now() -> str:
         help="Smallest move in confidence or coverage (percentage points) listed for a "
              "rule whose conditions and outcome stayed the same.")
 @concern_option()
-def diff(paths, first, last, form, form_old, min_shift, concern) -> None:
+@exact_option()
+def diff(paths, first, last, form, form_old, min_shift, concern, exact) -> None:
     """Compare two rule sets: the newest two snapshots of DIRECTORY (or --from/--to), or
     two snapshot or model files OLD and NEW.
 
@@ -72,9 +73,9 @@ def diff(paths, first, last, form, form_old, min_shift, concern) -> None:
     elif fmt == "markdown":
         from stream.rules.markdown import diff_markdown
 
-        echo(diff_markdown(result) + f"\n> {CAUTION}\n", nl=False)
+        echo(diff_markdown(result, exact=exact) + f"\n> {CAUTION}\n", nl=False)
     else:
-        echo(render_diff_text(result, min_shift / 100) + f"\n{CAUTION}\n", nl=False)
+        echo(render_diff_text(result, min_shift / 100, exact) + f"\n{CAUTION}\n", nl=False)
 
 
 # --------------------------------------------------------------------------- notes
@@ -90,7 +91,8 @@ def diff(paths, first, last, form, form_old, min_shift, concern) -> None:
 @option("--top", type=Whole(1), default=None,
         help="Only the this many rules covering the most records.")
 @click.option("--exact", is_flag=True,
-              help="The tree's rules as they are, without joining rules that decide alike.")
+              help="The tree's rules as they are: not joined where they decide alike, "
+                   "thresholds in full (not cut to the decimals the data carry).")
 @click.option("--title", default=None, help="Heading of the note.")
 @concern_option()
 def notes(path, since, label, top, exact, title, concern) -> None:
@@ -109,7 +111,7 @@ def notes(path, since, label, top, exact, title, concern) -> None:
 
     header, rules = load_side(path)
     concern = concern_of(header, rules, concern)
-    header = {**header, "concern": concern, "concern_records": sum(
+    header = {**header, "concern": concern, "exact": exact, "concern_records": sum(
         r.class_counts.get(concern, 0.0) for r in rules) if concern is not None else 0}
     items = [Simplified(r, (r.id,)) for r in rules] if exact else simplify(rules)
     place = {id(r): k for k, r in enumerate(concern_order([s.rule for s in items], concern))}
@@ -295,7 +297,8 @@ def _explain_with_rules(path, sources, records, fmt, output, limit) -> None:
         default=2.0, show_default=True,
               help="Seconds between refreshes.")
 @click.option("--once", is_flag=True, help="Show the view once and stop.")
-def watch(snapshot_dir, metrics_path, events_path, interval, once) -> None:
+@exact_option()
+def watch(snapshot_dir, metrics_path, events_path, interval, once, exact) -> None:
     """Follow a running learner: current rules, headline metrics with their trend, and the
     latest drift events, redrawn in place (on a terminal) until Ctrl-C.
 
@@ -305,7 +308,7 @@ def watch(snapshot_dir, metrics_path, events_path, interval, once) -> None:
     from stream.views.live_view import WatchState
     from stream.views.live_view import watch as run_watch
 
-    state = WatchState(snapshot_dir, metrics_path, events_path)
+    state = WatchState(snapshot_dir, metrics_path, events_path, exact=exact)
     try:
         run_watch(state, click.get_text_stream("stdout"), interval,
                   iterations=1 if once else None, tty=False if once else None)
@@ -326,7 +329,8 @@ def watch(snapshot_dir, metrics_path, events_path, interval, once) -> None:
               show_default=True, help="Where to write the page.")
 @click.option("--title", default=None, help="Title of the page.")
 @concern_option()
-def report(snapshot_dir, metrics_path, events_path, out_path, title, concern) -> None:
+@exact_option()
+def report(snapshot_dir, metrics_path, events_path, out_path, title, concern, exact) -> None:
     """Write one self-contained HTML page about a run: metrics over time with drift events,
     tree size, rule churn per snapshot, the current rules, the changes from the first
     snapshot to the last, and the safety note. The page loads nothing from the network.
@@ -335,7 +339,7 @@ def report(snapshot_dir, metrics_path, events_path, out_path, title, concern) ->
 
     started = time.perf_counter()
     data = load_report_data(snapshot_dir, metrics_path, events_path)
-    size = write_report(out_path, data, _iso_now(), title, concern)
+    size = write_report(out_path, data, _iso_now(), title, concern, exact)
     echo(f"sapwood: report written to {out_path} ({size / 1024:,.0f} KiB, "
                f"{time.perf_counter() - started:.1f} s)", err=True)
     echo(out_path)

@@ -38,7 +38,8 @@ from .bulk import in_bulk
 from .overlap import meeting_lists
 from .regions import Span, region_of, shape_of, within
 from .rule import Rule
-from .text import format_number, rule_conditions_text
+from .text import MARKS_LEGEND, rule_conditions_text, uses_marks
+from .thresholds import Thresholds
 
 
 def _scales(*rule_sets: Sequence[Rule]) -> dict[str, float]:
@@ -333,12 +334,14 @@ def _outcome(rule: Rule, target: str) -> str:
     return "no records yet" if rule.predict is None else f"{target} = {rule.predict}"
 
 
-def render_diff_text(diff: RuleDiff, min_shift: float = 0.02) -> str:
+def render_diff_text(diff: RuleDiff, min_shift: float = 0.02, exact: bool = False) -> str:
     """The diff for people: counts, then each added, removed and changed rule.
 
     ``min_shift`` (a fraction) is the smallest confidence or coverage move listed for a
-    rule whose conditions and outcome stayed the same.
+    rule whose conditions and outcome stayed the same; thresholds print in the data's
+    resolution, or in full with ``exact`` (see :class:`Thresholds`).
     """
+    style = Thresholds.of_both(diff.old_header, diff.new_header, exact)
     target = diff.new_header.get("target") or diff.old_header.get("target") or "target"
     counts = diff.churn()
     lines = [f"Rule changes for {target}",
@@ -359,7 +362,7 @@ def render_diff_text(diff: RuleDiff, min_shift: float = 0.02) -> str:
     if diff.added:
         lines.append("New rules")
         for rule, ids in diff.added:
-            lines.append(f"  {rule.id:<{width}}IF {rule_conditions_text(rule)}")
+            lines.append(f"  {rule.id:<{width}}IF {rule_conditions_text(rule, style)}")
             lines.append(f"  {pad}THEN {_outcome(rule, target)}  (confidence "
                          f"{_pct(rule.confidence)}, coverage {_pct(rule.coverage)})")
             if ids:
@@ -368,7 +371,7 @@ def render_diff_text(diff: RuleDiff, min_shift: float = 0.02) -> str:
     if diff.removed:
         lines.append("Rules gone")
         for rule, ids in diff.removed:
-            lines.append(f"  {rule.id:<{width}}IF {rule_conditions_text(rule)}")
+            lines.append(f"  {rule.id:<{width}}IF {rule_conditions_text(rule, style)}")
             lines.append(f"  {pad}THEN {_outcome(rule, target)}  (was confidence "
                          f"{_pct(rule.confidence)}, coverage {_pct(rule.coverage)})")
             if ids:
@@ -377,7 +380,7 @@ def render_diff_text(diff: RuleDiff, min_shift: float = 0.02) -> str:
     if diff.changed:
         lines.append("Changed rules")
         for change in diff.changed:
-            lines.extend(_change_lines(change, target, width))
+            lines.extend(_change_lines(change, target, width, style))
         lines.append("")
     shifted = [c for c in diff.unchanged
                if abs(c.new.confidence - c.old.confidence) >= min_shift
@@ -390,6 +393,8 @@ def render_diff_text(diff: RuleDiff, min_shift: float = 0.02) -> str:
         lines.append("")
     lines.append(f"{len(diff.unchanged)} rules kept their conditions and outcome"
                  f"{f' ({len(shifted)} listed above)' if shifted else ''}.")
+    if uses_marks([r for r, _ in diff.added + diff.removed] + [c.new for c in diff.changed]):
+        lines.append(MARKS_LEGEND)
     return "\n".join(lines) + "\n"
 
 
@@ -406,15 +411,14 @@ def _evidence(change: Change) -> str:
             f"-> {_pct(new.coverage)} ({_points(new.coverage - old.coverage)})")
 
 
-def _change_lines(change: Change, target: str, width: int) -> list[str]:
+def _change_lines(change: Change, target: str, width: int, style: Thresholds) -> list[str]:
     pad = " " * width
-    out = [f"  {_ids(change):<{width}}IF {rule_conditions_text(change.new)}"]
+    out = [f"  {_ids(change):<{width}}IF {rule_conditions_text(change.new, style)}"]
     if change.predict_changed:
         out.append(f"  {pad}THEN {target}: {change.old.predict} -> {change.new.predict}")
     for move in change.moves:
         out.append(f"  {pad}{move['feature']} {move['bound']} bound "
-                   f"{format_number(move['old'])} -> {format_number(move['new'])} "
-                   f"({'+' if move['by'] > 0 else ''}{format_number(move['by'])})")
+                   f"{style.move(move['feature'], move['old'], move['new'])}")
     for cat in change.categories:
         parts = []
         if cat["added"]:

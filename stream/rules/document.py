@@ -11,6 +11,7 @@ from __future__ import annotations
 from typing import Any
 
 from stream.errors import ModelFileError
+from stream.resolution import FINE
 
 _OPS = ("<=", ">", "in", "not in")
 _NUMBER = "a number"
@@ -26,6 +27,8 @@ _HEADER = {  # field -> (what it must be, test); optional, may be null unless sa
     "kappa": (_NUMBER, lambda v: v is None or _is_number(v)),
     "window_accuracy": (_NUMBER, lambda v: v is None or _is_number(v)),
     "concern": ("text or null", lambda v: v is None or isinstance(v, str)),
+    "decimals": (f"an object of whole numbers 0..{FINE}", lambda v: v is None or (
+        isinstance(v, dict) and all(_is_int(x) and 0 <= x <= FINE for x in v.values()))),
     "data_time": ("text or a number", lambda v: v is None or isinstance(v, str)
                   or _is_number(v)),
     "rule_count": ("a whole number", lambda v: _is_int(v)),

@@ -23,8 +23,8 @@ from stream.tree.paths import Condition
 from .diff import RuleDiff, fate_note, origin_note
 from .rule import Rule
 from .simplify import Simplified
-from .text import CAUTION, rule_conditions_text
-from .text import format_condition
+from .text import CAUTION, MARKS_LEGEND, format_condition, rule_conditions_text, uses_marks
+from .thresholds import Thresholds
 
 
 
@@ -56,13 +56,13 @@ def _code(text: str) -> str:
     return f"{fence}{pad}{text}{pad}{fence}"
 
 
-def _when(rule: Rule) -> str:
+def _when(rule: Rule, style: Thresholds) -> str:
     groups: dict[str, list[Condition]] = {}
     for c in rule.conditions:
         groups.setdefault(c.feature, []).append(c)
     if not groups:
         return "always"
-    return " and ".join(_code(format_condition(g).replace("  (", " (")) for g in groups.values())
+    return " and ".join(_code(format_condition(g, style)) for g in groups.values())
 
 
 def _pct(value: float | None) -> str:
@@ -110,6 +110,7 @@ def rules_markdown(rules: Sequence[Rule | Simplified], header: dict,
     heading = title or f"Rules for {_text(target)}"
     if header.get("sequence") is not None and title is None:
         heading += f" (snapshot {header['sequence']})"
+    style = Thresholds.of(header, bool(header.get("exact")))
     lines = [f"## {heading}", "", _facts(header, len(rules), total), ""]
     if not rules:
         lines += ["No rules to show.", ""]
@@ -126,13 +127,15 @@ def rules_markdown(rules: Sequence[Rule | Simplified], header: dict,
         if isinstance(item, Simplified) and len(item.sources) > 1:
             joined.append(f"{rule.id} joins {', '.join(item.sources)}")
         outcome = "(no records yet)" if rule.predict is None else _data(rule.predict)
-        row = (f"| {rule.id} | {_cell(_when(rule))} | {_cell(outcome)} | "
+        row = (f"| {rule.id} | {_cell(_when(rule, style))} | {_cell(outcome)} | "
                f"{_pct(rule.confidence)} | {_pct(rule.coverage)} | {rule.records:,.0f} |")
         if catch:
             row += (f" {_pct(rule.class_counts.get(concern, 0.0) / held)} |"
                     if rule.predict == concern else " |")
         lines.append(row)
     lines.append("")
+    if uses_marks([item.rule if isinstance(item, Simplified) else item for item in rules]):
+        lines += [_text(MARKS_LEGEND), ""]
     if joined:
         lines.append("Rules that decide alike and differ in one condition are joined; "
                      "each joined rule lists the tree's rules it stands for:")
@@ -142,19 +145,21 @@ def rules_markdown(rules: Sequence[Rule | Simplified], header: dict,
     return "\n".join(lines)
 
 
-def _rule_line(rule: Rule, target: str) -> str:
+def _rule_line(rule: Rule, target: str, style: Thresholds) -> str:
     outcome = "no records yet" if rule.predict is None else f"{target} = {rule.predict}"
     outcome = printable(outcome)
-    return (f"**{rule.id}** {_code('IF ' + rule_conditions_text(rule).replace('  (', ' ('))} "
+    return (f"**{rule.id}** {_code('IF ' + rule_conditions_text(rule, style))} "
             f"then {_code(outcome)} (confidence {_pct(rule.confidence)}, coverage "
             f"{_pct(rule.coverage)})")
 
 
-def diff_markdown(diff: RuleDiff, limit: int = 20) -> str:
+def diff_markdown(diff: RuleDiff, limit: int = 20, exact: bool = False) -> str:
     """What changed between the two sides of ``diff``, as Markdown lists.
 
-    At most ``limit`` entries per list; the rest are counted.
+    At most ``limit`` entries per list; the rest are counted. Thresholds print in the
+    data's resolution, or in full with ``exact``.
     """
+    style = Thresholds.of_both(diff.old_header, diff.new_header, exact)
     target = diff.new_header.get("target") or diff.old_header.get("target") or "target"
     counts = diff.churn()
     before = diff.old_header.get("sequence")
@@ -177,9 +182,11 @@ def diff_markdown(diff: RuleDiff, limit: int = 20) -> str:
             lines.append(f"- ... and {len(items) - limit} more")
         lines.append("")
 
-    section("New rules", [_rule_line(rule, target) + (f"; {origin_note(ids)}" if ids else "")
+    section("New rules", [_rule_line(rule, target, style)
+                          + (f"; {origin_note(ids)}" if ids else "")
                           for rule, ids in diff.added])
-    section("Rules gone", [_rule_line(rule, target) + (f"; {fate_note(ids)}" if ids else "")
+    section("Rules gone", [_rule_line(rule, target, style)
+                           + (f"; {fate_note(ids)}" if ids else "")
                            for rule, ids in diff.removed])
     changed = []
     for change in diff.changed:
@@ -189,7 +196,7 @@ def diff_markdown(diff: RuleDiff, limit: int = 20) -> str:
                          f"{_data(change.new.predict)}")
         for move in change.moves:
             parts.append(f"{_data(move['feature'])} {move['bound']} bound "
-                         f"{move['old']:.4g} -> {move['new']:.4g}")
+                         f"{style.move(move['feature'], move['old'], move['new'])}")
         for cat in change.categories:
             if cat["added"]:
                 parts.append(f"{_data(cat['feature'])} now lists "
@@ -204,15 +211,18 @@ def diff_markdown(diff: RuleDiff, limit: int = 20) -> str:
             f"{change.old.id} (now {change.new.id})"
         changed.append(f"**{label}**: " + "; ".join(parts))
     section("Changed rules", changed)
+    if uses_marks([r for r, _ in diff.added + diff.removed] + [c.new for c in diff.changed]):
+        lines += [_text(MARKS_LEGEND), ""]
     return "\n".join(lines)
 
 
 def shift_note(rules: Sequence[Rule | Simplified], header: dict,
                diff: RuleDiff | None = None, total: int | None = None,
                title: str | None = None) -> str:
-    """A whole note: the rules table, the changes (if a diff is given), the safety note."""
+    """A whole note: the rules table, the changes (if a diff is given), the safety note
+    (``header["exact"]``: thresholds in full)."""
     parts = [rules_markdown(rules, header, title=title, total=total)]
     if diff is not None:
-        parts.append(diff_markdown(diff))
+        parts.append(diff_markdown(diff, exact=bool(header.get("exact"))))
     parts.append(f"> {CAUTION}\n")
     return "\n".join(parts)

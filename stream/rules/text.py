@@ -8,6 +8,17 @@ from stream.shown import printable
 from stream.tree.paths import Condition
 
 from .rule import Rule
+from .thresholds import Thresholds
+
+MISSING_MARK = "*"
+"""Marks a condition that records missing the field also meet (they follow its branch)."""
+
+NEW_VALUE_MARK = "+"
+"""Marks a category condition that values unseen when the split was made also meet."""
+
+MARKS_LEGEND = (f"{MISSING_MARK} also records where the field is missing;  "
+                f"{NEW_VALUE_MARK} also values not seen when the split was made")
+"""The legend line under a listing that uses the marks."""
 
 CAUTION = ("Learned rules describe what the data showed so far. They are advisory, not safety "
            "interlocks: defer to site safety systems, local codes and licensed practice.")
@@ -31,17 +42,24 @@ def drift_words(rule: Rule) -> str:
     return ""
 
 
-def rule_conditions_text(rule: Rule) -> str:
+def rule_conditions_text(rule: Rule, style: Thresholds | None = None) -> str:
     """A rule's conditions on one line: ``door = open AND ambient_c > 27.9``; ``always``
     when there are none."""
-    return conditions_text(rule.conditions) if rule.conditions else "always"
+    return conditions_text(rule.conditions, style) if rule.conditions else "always"
 
 
-def conditions_text(conditions: Sequence[Condition]) -> str:
+def conditions_text(conditions: Sequence[Condition], style: Thresholds | None = None) -> str:
     """Conditions on one line, ``AND``-joined; ``(everything)`` when there are none."""
     if not conditions:
         return "(everything)"
-    return " AND ".join(format_condition(group) for group in _grouped(conditions))
+    return " AND ".join(format_condition(group, style) for group in _grouped(conditions))
+
+
+def uses_marks(rules: Sequence[Rule]) -> bool:
+    """Whether the text of ``rules`` carries a missing-value or new-value mark (so a
+    listing needs :data:`MARKS_LEGEND`)."""
+    return any(c.missing or (c.op in ("in", "not in") and c.branch)
+               for r in rules for c in r.conditions)
 
 
 def format_number(value: float) -> str:
@@ -54,9 +72,16 @@ def format_number(value: float) -> str:
     return text
 
 
-def format_condition(conditions: Sequence[Condition]) -> str:
-    """One feature's merged conditions as text: ``12.5 < supply_temp <= 30.1``."""
-    name = printable(conditions[0].feature)
+def format_condition(conditions: Sequence[Condition], style: Thresholds | None = None) -> str:
+    """One feature's merged conditions as text: ``12.5 < supply_temp <= 30.1``; a mark
+    follows when records missing the field (``*``) or category values unseen at the split
+    (``+``) also meet it. ``style`` prints thresholds in the data's resolution."""
+    feature = conditions[0].feature
+    name = printable(feature)
+
+    def number(value: float) -> str:
+        return style.number(feature, value) if style is not None else format_number(value)
+
     lo = next((c.value for c in conditions if c.op == ">"), None)
     hi = next((c.value for c in conditions if c.op == "<="), None)
     sets = [c for c in conditions if c.op in ("in", "not in")]
@@ -65,21 +90,20 @@ def format_condition(conditions: Sequence[Condition]) -> str:
         branch = [printable(label) for label in c.branch]
         shown = branch[0] if len(branch) == 1 else "{" + ", ".join(branch) + "}"
         text = f"{name} {'=' if len(c.branch) == 1 else 'in'} {shown}"
-        text += "  (or missing, or a new value)" if c.missing else "  (or a new value)"
-        return text
+        return text + " " + (MISSING_MARK if c.missing else "") + NEW_VALUE_MARK
     if sets:
         c = sets[0]
         labels = ", ".join(printable(label) for label in c.value)
         text = f"{name} {'=' if c.op == 'in' and len(c.value) == 1 else c.op} "
         text += labels if c.op == "in" and len(c.value) == 1 else "{" + labels + "}"
     elif lo is not None and hi is not None:
-        text = f"{format_number(lo)} < {name} <= {format_number(hi)}"
+        text = f"{number(lo)} < {name} <= {number(hi)}"
     elif lo is not None:
-        text = f"{name} > {format_number(lo)}"
+        text = f"{name} > {number(lo)}"
     else:
-        text = f"{name} <= {format_number(hi)}"
+        text = f"{name} <= {number(hi)}"
     if conditions[0].missing:
-        text += "  (or missing)"
+        text += f" {MISSING_MARK}"
     return text
 
 
@@ -98,7 +122,9 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
     """Rules as aligned text, in the order given. ``header`` needs ``target``;
     ``records``, ``accuracy``, ``concern`` and ``written_at`` are shown when present
     (``concern_records``: the class of concern's records in the whole tree, when only
-    some rules are shown)."""
+    some rules are shown; ``decimals`` per field and ``exact``: how thresholds print, see
+    :class:`Thresholds`)."""
+    style = Thresholds.of(header, bool(header.get("exact")))
     target = printable(str(header.get("target", "target")))
     lines = [f"sapwood rules for {target}"]
     concern = header.get("concern")
@@ -140,7 +166,7 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
             lines.append(f"{r.id:<{width}}ALWAYS")
         for i, group in enumerate(groups):
             lead = f"{r.id:<{width}}IF   " if i == 0 else f"{pad}AND  "
-            lines.append(lead + format_condition(group))
+            lines.append(lead + format_condition(group, style))
         extra = []
         if r.estimate is not None:
             lines.append(f"{pad}THEN {target} = {r.estimate.get('shown', '?')}")
@@ -174,5 +200,7 @@ def render_text(rules: Sequence[Rule], header: dict) -> str:
         if extra:
             lines.append(f"{pad}     " + "; ".join(extra))
         lines.append("")
+    if uses_marks(rules):
+        lines += [MARKS_LEGEND, ""]
     lines.append(CAUTION)
     return "\n".join(lines) + "\n"

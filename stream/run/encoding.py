@@ -23,6 +23,7 @@ from connectors.base import RawBatch, Reject
 from stream.checks import CATEGORY_LIMIT, VALUE_LIMIT, require_int
 from stream.errors import ConfigError, ModelFileError
 
+from stream.resolution import FINE, decimals_of
 from .schema import Schema
 from .values import (
     as_array,
@@ -187,6 +188,7 @@ class PreparedColumns:
     times: np.ndarray | None
     ids: np.ndarray | None
     unknown_present: dict[str, int]   # values present per field outside the schema
+    decimals: dict[str, int]          # per numeric feature, the decimals its values carry
 
 
 def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> PreparedColumns:
@@ -209,6 +211,7 @@ def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> P
         return np.full(n, np.nan)  # a key no record of this batch carried
 
     X = np.empty((n, len(schema.feature_names)))
+    decimals: dict[str, int] = {}
     pending: list[tuple[int, str, np.ndarray, list[str | None]]] = []
     for j, (name, kind) in enumerate(zip(schema.feature_names, schema.feature_kinds)):
         raw = column(name)
@@ -217,6 +220,8 @@ def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> P
             report(bad, name, _REASON_NUMBER, raw)
             _report_unlearnable(numbers, report, name, raw)
             X[:, j] = numbers
+            if not scoring:
+                decimals[name] = decimals_of(numbers)
         else:
             codes, labels = factorize_labels(raw)
             pending.append((j, name, codes, labels))
@@ -248,7 +253,7 @@ def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> P
                        for name in frame.columns if name not in known}
     return PreparedColumns(batch, schema, scoring, X, np.asarray(batch.lines, dtype=np.int64),
                            problems, bad_rows, pending, raw_target, target_codes,
-                           target_labels, y_values, times, ids, unknown_present)
+                           target_labels, y_values, times, ids, unknown_present, decimals)
 
 
 class Encoder:
@@ -279,6 +284,7 @@ class Encoder:
                        in zip(schema.feature_names, schema.feature_kinds) if kind == "category"}
         self._classes = _Codebook(cap=class_cap)
         self.unknown_fields: dict[str, int] = {}
+        self.decimals: dict[str, int] = {}   # numeric feature -> decimals its values carry
 
     @property
     def classes(self) -> list[str]:
@@ -354,6 +360,8 @@ class Encoder:
         ids = None if prepared.ids is None else prepared.ids[keep]
         for name, present in prepared.unknown_present.items():
             self.unknown_fields[name] = self.unknown_fields.get(name, 0) + present
+        for name, places in prepared.decimals.items():
+            self.decimals[name] = max(self.decimals.get(name, 0), places)
         times = prepared.times
         everything = not bad_rows.any()
         return EncodedBatch(
@@ -392,6 +400,7 @@ class Encoder:
             "pooled": {name: [book.pooled, book.first_pooled, book.reached_at]
                        for name, book in self._books.items() if book.first_pooled is not None},
             "unknown_fields": dict(self.unknown_fields),
+            "decimals": dict(self.decimals),
         }
 
     @classmethod
@@ -439,6 +448,11 @@ class Encoder:
         if not isinstance(unknown, dict):
             raise fail("unknown_fields is not an object")
         encoder.unknown_fields = {str(k): int(v) for k, v in unknown.items()}
+        decimals = state.get("decimals", {})  # absent in states written before
+        if not isinstance(decimals, dict) or not all(
+                isinstance(v, int) and 0 <= v <= FINE for v in decimals.values()):
+            raise fail("decimals is not an object of whole numbers 0.." + str(FINE))
+        encoder.decimals = {str(k): int(v) for k, v in decimals.items()}
         return encoder
 
 

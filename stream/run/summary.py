@@ -33,6 +33,8 @@ def rules_header(run: Any) -> dict:
               "data_time": iso(run.last_time) if run.last_time is not None else None}
     if task is not None:
         header.update(task.headline(task.result(encoder)))
+    if encoder is not None:
+        header["decimals"] = dict(encoder.decimals)  # how the text forms print thresholds
     if header.get("concern") is None and run.job.concern is not None:
         header["concern"] = run.job.concern  # declared, not seen yet (or a numeric target's)
     return header

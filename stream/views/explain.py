@@ -35,7 +35,7 @@ from stream.rules.concern import precision
 from stream.rules.classify import extract_rules
 from stream.rules.regions import region_of
 from stream.rules.rule import Rule, rule_id
-from stream.rules.text import format_condition
+from stream.rules.text import NEW_VALUE_MARK, format_condition
 from stream.run.saved_model import SavedModel
 from stream.run.values import MISSING_MARKERS, parse_numbers
 from stream.tree.paths import Condition, path_steps
@@ -120,7 +120,7 @@ def _path(model, leaf: int, x: np.ndarray, known: dict[str, list[str]],
         if isinstance(value, set):
             value = tuple(sorted(value))
         condition = Condition(name, op, value, False, tuple(sorted(branch or ())))
-        test = format_condition([condition]).replace("  (or a new value)", "")
+        test = format_condition([condition]).removesuffix(" " + NEW_VALUE_MARK)
         if math.isnan(v):
             shown, by_default = "missing", True
         elif labels is not None:

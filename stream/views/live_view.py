@@ -30,7 +30,8 @@ from stream.shown import for_terminal, printable
 from stream.errors import SapwoodError
 from stream.rules.concern import concern_of, top_rules
 from stream.rules.rule import Rule, rules_from_payload
-from stream.rules.text import CAUTION, rule_conditions_text
+from stream.rules.thresholds import Thresholds
+from stream.rules.text import CAUTION, MARKS_LEGEND, rule_conditions_text, uses_marks
 from stream.run.snapshots import SnapshotStore
 
 from .rule_sources import read_snapshot
@@ -55,8 +56,10 @@ class WatchState:
     """
 
     def __init__(self, snapshot_dir: str | None, metrics_path: str | None = None,
-                 events_path: str | None = None, history: int = 60) -> None:
+                 events_path: str | None = None, history: int = 60,
+                 exact: bool = False) -> None:
         self.snapshot_dir = snapshot_dir
+        self.exact = exact       # thresholds in full, not in the data's resolution
         self.store = SnapshotStore(snapshot_dir) if snapshot_dir else None
         self.metrics = LogTail(metrics_path, "metrics log") if metrics_path else None
         self.events_tail = LogTail(events_path, "events file") if events_path else None
@@ -247,6 +250,7 @@ def render_frame(state: WatchState, width: int = 100, height: int = 40, now: str
     room = height - len(lines) - len(footer) - 1
     if state.rules and room > 0:
         concern = concern_of(state.snapshot or {}, state.rules)
+        style = Thresholds.of(state.snapshot, state.exact)
         ranked = state.rules
         show = top_rules(ranked, concern, room) if concern is not None else \
             sorted(ranked, key=lambda r: (-r.coverage, r.id))[:room]
@@ -261,7 +265,9 @@ def render_frame(state: WatchState, width: int = 100, height: int = 40, now: str
                      "replaced": "[replaced] "}.get(getattr(r, "drift", "stable"), "")
             lines.append(f"  {r.id:<{id_width}}  {r.predict!s:<{class_width}} "
                          f"{_pct(r.confidence)} conf {_pct(r.coverage)} cov  {state}"
-                         f"{rule_conditions_text(r).replace('  (', ' (')}")
+                         f"{rule_conditions_text(r, style)}")
+        if uses_marks(show) and len(lines) < height - len(footer):
+            lines.append(MARKS_LEGEND)
     lines.extend(footer)
     return [_clip(line, width) for line in lines[:height]]
 

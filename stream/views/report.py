@@ -28,12 +28,9 @@ from stream.rules.concern import catches, concern_of, concern_order, leads, top_
 from stream.rules.diff import RuleDiff, diff_rules, fate_note, origin_note
 from stream.rules.rule import Rule, rules_from_payload
 from stream.rules.simplify import simplify
-from stream.rules.text import (
-    CAUTION_IN_FULL,
-    drift_words,
-    format_number,
-    rule_conditions_text,
-)
+from stream.rules.text import CAUTION_IN_FULL, MARKS_LEGEND, drift_words, rule_conditions_text, \
+    uses_marks
+from stream.rules.thresholds import Thresholds
 from stream.run.atomic import write_atomic
 from stream.run.snapshots import SnapshotStore
 
@@ -212,7 +209,7 @@ def _drift_text(rule: Rule) -> str:
 
 
 def _rules_table(rules: Sequence[Rule], target: str, sources: dict | None = None,
-                 concern: str | None = None) -> str:
+                 concern: str | None = None, style: Thresholds | None = None) -> str:
     note = ""
     share = catches(rules, concern)
     rules = concern_order(rules, concern)
@@ -242,14 +239,15 @@ def _rules_table(rules: Sequence[Rule], target: str, sources: dict | None = None
         extra += f"<td>{escape(', '.join(sources[r.id]))}</td>" if sources else ""
         lead = ' class="concern"' if leads(r, concern) else ""
         body.append(f"<tr{lead}><td><code>{escape(r.id)}</code></td>"
-                    f"<td><code>{escape(rule_conditions_text(r).replace('  (', ' ('))}</code></td>"
+                    f"<td><code>{escape(rule_conditions_text(r, style))}</code></td>"
                     f"<td>{escape(outcome)}</td><td class=n>{_pct(r.confidence)}</td>"
                     f"<td class=n>{_pct(r.coverage)}</td><td class=n>{r.records:,.0f}</td>"
                     f"<td class=n>{accuracy}</td>{extra}</tr>")
-    return f'{note}<table class="rules">{head}{"".join(body)}</table>'
+    legend = f"<p class=meta>{escape(MARKS_LEGEND)}</p>" if uses_marks(rules) else ""
+    return f'{note}<table class="rules">{head}{"".join(body)}</table>{legend}'
 
 
-def _diff_html(diff: RuleDiff, target: str, limit: int = 40) -> str:
+def _diff_html(diff: RuleDiff, target: str, style: Thresholds, limit: int = 40) -> str:
     counts = diff.churn()
     old, new = diff.old_header, diff.new_header
     parts = [f"<p>From snapshot {old.get('sequence')} ({old.get('records', 0):,} records, "
@@ -267,7 +265,7 @@ def _diff_html(diff: RuleDiff, target: str, limit: int = 40) -> str:
     def rule_item(rule: Rule, note: str) -> str:
         outcome = "no records yet" if rule.predict is None else f"{target} = {rule.predict}"
         return (f"<li><code>{escape(rule.id)}</code> IF <code>"
-                f"{escape(rule_conditions_text(rule).replace('  (', ' ('))}</code> THEN "
+                f"{escape(rule_conditions_text(rule, style))}</code> THEN "
                 f"<code>{escape(outcome)}</code> (confidence {_pct(rule.confidence)}, "
                 f"coverage {_pct(rule.coverage)}){escape(note)}</li>")
 
@@ -287,8 +285,8 @@ def _diff_html(diff: RuleDiff, target: str, limit: int = 40) -> str:
         notes = []
         if c.predict_changed:
             notes.append(f"outcome {c.old.predict} -> {c.new.predict}")
-        notes += [f"{m['feature']} {m['bound']} bound {format_number(m['old'])} -> "
-                  f"{format_number(m['new'])}" for m in c.moves]
+        notes += [f"{m['feature']} {m['bound']} bound "
+                  f"{style.move(m['feature'], m['old'], m['new'])}" for m in c.moves]
         notes += [f"{k['feature']} now lists {', '.join(k['added'])}" for k in c.categories
                   if k["added"]]
         notes += [f"{k['feature']} no longer lists {', '.join(k['removed'])}"
@@ -315,9 +313,10 @@ def _events_table(events: Sequence[dict], limit: int = 200) -> str:
 
 
 def render_report(data: ReportData, generated_at: str, title: str | None = None,
-                  concern: str | None = None) -> str:
+                  concern: str | None = None, exact: bool = False) -> str:
     """The whole page as HTML text (pure: the same data and time give the same bytes).
-    ``concern`` overrides the run's class of concern, whose rules lead the tables."""
+    ``concern`` overrides the run's class of concern, whose rules lead the tables;
+    ``exact`` prints thresholds in full rather than in the data's resolution."""
     first, last_doc = data.snapshots[0], data.snapshots[-1]
     target = last_doc.get("target", "target")
     rows = data.metrics or _snapshot_rows(data.snapshots)
@@ -330,6 +329,7 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None,
     rules = kept.get("last") or rules_from_payload(last_doc)
     simple = simplify(rules)
     concern = concern_of(last_doc, rules, concern)
+    style = Thresholds.of(last_doc, exact)
 
     charts = []
     accuracy = _metric_series(rows, "accuracy")
@@ -412,14 +412,14 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None,
     out.append(f'<p class="meta">Snapshot #{last_doc["sequence"]}, {lead}. Coverage is the '
                "share of learned records a rule holds; confidence the share of its records "
                "in its class.</p>")
-    out.append(_rules_table(rules, target, concern=concern))
+    out.append(_rules_table(rules, target, concern=concern, style=style))
     if len(simple) < len(rules):
         out.append(f"<details><summary>The same decisions in {len(simple)} joined rules"
                    "</summary><p class=meta>Rules that predict the same class and differ "
                    "in one condition are joined; every record gets the same predicted "
                    "class as from the rules above.</p>")
         out.append(_rules_table([s.rule for s in simple], target,
-                                {s.rule.id: s.sources for s in simple}, concern))
+                                {s.rule.id: s.sources for s in simple}, concern, style))
         out.append("</details>")
     if len(data.snapshots) > 1:
         if len(data.snapshots) == 2 and kept.get("last_diff") is not None:
@@ -429,7 +429,8 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None,
             diff = diff_rules(kept.get("first") or rules_from_payload(first), rules,
                               header_of(first), header_of(last_doc))
         out.append("<h2>From the first snapshot to the last</h2>")
-        out.append(_diff_html(diff.concern_first(concern), target))
+        out.append(_diff_html(diff.concern_first(concern), target,
+                              Thresholds.of_both(first, last_doc, exact)))
     out.append(f"<h2>Drift events ({len(data.events)})</h2>")
     out.append(_events_table(data.events) if data.events else
                '<p class="meta">No drift events' + (" were recorded." if "drift events"
@@ -443,8 +444,9 @@ def render_report(data: ReportData, generated_at: str, title: str | None = None,
 
 
 def write_report(path: str, data: ReportData, generated_at: str,
-                 title: str | None = None, concern: str | None = None) -> int:
+                 title: str | None = None, concern: str | None = None,
+                 exact: bool = False) -> int:
     """Write the page atomically; returns its size in bytes."""
-    html = render_report(data, generated_at, title, concern)
+    html = render_report(data, generated_at, title, concern, exact)
     write_atomic(path, html)
     return len(html.encode("utf-8"))

@@ -15,7 +15,7 @@ from stream.run.snapshots import SnapshotStore
 
 _HEADER_KEYS = ("target", "task", "classes", "records", "accuracy", "kappa",
                 "window_accuracy", "mae", "rmse", "r2", "data_time", "written_at", "sequence",
-                "concern")
+                "concern", "decimals")
 
 
 def read_snapshot(store: SnapshotStore, sequence: int) -> dict:
@@ -47,7 +47,8 @@ def load_rules(path: str) -> tuple[dict, list[Rule]]:
         task = saved.task
         header = {"target": saved.schema.target, "task": task.name,
                   "classes": saved.encoder.classes, "records": task.records_learned,
-                  **task.headline(task.result(saved.encoder))}
+                  **task.headline(task.result(saved.encoder)),
+                  "decimals": dict(saved.encoder.decimals)}
         if header.get("concern") is None and saved.facts.get("concern") is not None:
             header["concern"] = saved.facts["concern"]  # declared, or a numeric target's
         return header, task.rules(saved.encoder.categories)
@@ -68,7 +69,7 @@ def _from_payload(payload: dict) -> tuple[dict, list[Rule]]:
 
 
 _SIDE_KEYS = ("target", "task", "classes", "records", "accuracy", "data_time",
-              "written_at", "sequence", "concern")
+              "written_at", "sequence", "concern", "decimals")
 
 
 def header_of(document: dict) -> dict:

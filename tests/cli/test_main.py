@@ -601,3 +601,45 @@ def test_demo_runner_smoke(tmp_path):
     assert f"({len(index)} snapshots; index.json lists them)" in done.stdout
     summary = json.loads(places["summary"].read_text())
     assert summary["records"] == 5_000
+
+
+def test_thresholds_print_in_the_resolution_of_the_data(tmp_path, capsys):
+    """river's Agrawal generator (function 5: age, salary and loan) gives whole-year ages and computed money values (salary,
+    commission, house value, loan): the text forms cut a threshold on a whole-number
+    field to whole numbers (selecting the same records), give a computed one four
+    significant digits; --exact and the JSON keep the exact values."""
+    import re
+
+    from stream.resolution import FINE
+    from stream.rules.thresholds import on_grid
+
+    model = tmp_path / "m.sapwood"
+    data = write_csv(tmp_path / "agrawal5.csv", agrawal_table(12_000, seed=3, function=5))
+    code, _, err = run_main(["learn", data, "--target", TARGET, "--save", model], capsys)
+    assert code == 0, err
+    _, listing, _ = run_main(["rules", model, "--form", "json"], capsys)
+    document = json.loads(listing)
+    decimals = document["decimals"]
+    assert decimals["age"] == 0 and decimals["salary"] == decimals["loan"] == FINE
+    exact = {}
+    for rule in document["rules"]:
+        for c in rule["conditions"]:
+            if c["op"] in ("<=", ">"):
+                exact.setdefault(c["feature"], set()).add(c["value"])
+    assert {decimals[f] for f in exact} == {0, FINE}  # both kinds of field were split on
+    _, text, _ = run_main(["rules", model], capsys)
+    _, full, _ = run_main(["rules", model, "--exact"], capsys)
+    number = r"(-?\d+(?:\.\d+)?)"
+    shown: dict[str, set] = {}
+    for a, name, b in re.findall(rf"(?:{number} < )?([a-z]+) (?:<=|>) {number}", text):
+        shown.setdefault(name, set()).update(float(v) for v in (a, b) if v)
+    assert set(shown) == set(exact)
+    for name, values in shown.items():
+        if decimals[name] == 0:
+            assert values == {float(on_grid(v, 0)) for v in exact[name]}
+        else:
+            for v in values:
+                assert any(abs(v - e) <= 5e-4 * abs(e) for e in exact[name]), (name, v)
+    printed = {float(v) for v in re.findall(number, " ".join(
+        line for line in full.splitlines() if "IF" in line or "AND" in line))}
+    assert set().union(*exact.values()) <= printed

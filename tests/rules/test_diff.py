@@ -224,7 +224,7 @@ New rules
   R3  IF supply_temp > 5.25 AND door = open
       THEN alarm = yes  (confidence 70.0%, coverage 10.0%)
       carved from R2
-  R4  IF supply_temp > 5.25 AND door not in {open}  (or missing)
+  R4  IF supply_temp > 5.25 AND door not in {open} *
       THEN alarm = no  (confidence 80.0%, coverage 10.0%)
       carved from R2
 
@@ -239,6 +239,7 @@ Changed rules
       confidence 90.0% -> 80.0% (-10.0 points), coverage 10.0% -> 10.0% (0.0 points)
 
 0 rules kept their conditions and outcome.
+* also records where the field is missing;  + also values not seen when the split was made
 """
 
 

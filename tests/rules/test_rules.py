@@ -254,20 +254,20 @@ HEADER = {"target": "status", "records": 185, "accuracy": 0.8123}
 #   R3  fault 4/5   = 80.0%,  5/185 =  2.7%     R9 ok    63/70 = 90.0%, 70/185 = 37.8%
 #   R4  ok    48/50 = 96.0%, 50/185 = 27.0%     R7 ok     6/8  = 75.0%,  8/185 =  4.3%
 # temp on the path of R8: > 10 (missing: node 2 is heaviest) and > 20.125 (missing: node
-# 8 is heaviest) merge to "temp > 20.125 (or missing)"; on R7's: > 10 (missing) and
+# 8 is heaviest) merge to "temp > 20.125 *" (missing too); on R7's: > 10 (missing) and
 # <= 20.125 (not missing: 7 is lighter) merge to "10 < temp <= 20.125", missing only if
 # every step admits it.
 GOLDEN_TEXT = """\
 sapwood rules for status
 185 records learned | 6 rules | prequential accuracy 81.2%
 
-R10  IF   temp > 10  (or missing)
-     AND  door = closed  (or missing, or a new value)
+R10  IF   temp > 10 *
+     AND  door = closed *+
      AND  pressure > 2.5
      THEN status = fault
           confidence 66.7%, coverage 16.2%, 30 records (ok 10 / fault 20)
 
-R8   IF   temp > 20.125  (or missing)
+R8   IF   temp > 20.125 *
      AND  door = open
      THEN status = fault
           confidence 90.9%, coverage 11.9%, 22 records (ok 2 / fault 20)
@@ -277,15 +277,15 @@ R3   IF   temp <= 10
      THEN status = fault
           confidence 80.0%, coverage 2.7%, 5 records (ok 1 / fault 4)
 
-R9   IF   temp > 10  (or missing)
-     AND  door = closed  (or missing, or a new value)
-     AND  pressure <= 2.5  (or missing)
+R9   IF   temp > 10 *
+     AND  door = closed *+
+     AND  pressure <= 2.5 *
      THEN status = ok
           confidence 90.0%, coverage 37.8%, 70 records (ok 63 / fault 7)
           scored right 90.0% of 60
 
 R4   IF   temp <= 10
-     AND  door not in {open}  (or missing)
+     AND  door not in {open} *
      THEN status = ok
           confidence 96.0%, coverage 27.0%, 50 records (ok 48 / fault 2)
           not growing
@@ -294,6 +294,8 @@ R7   IF   10 < temp <= 20.125
      AND  door = open
      THEN status = ok
           confidence 75.0%, coverage 4.3%, 8 records (ok 6 / fault 2)
+
+* also records where the field is missing;  + also values not seen when the split was made
 
 Learned rules describe what the data showed so far. They are advisory, not safety interlocks: \
 defer to site safety systems, local codes and licensed practice.
