@@ -44,10 +44,10 @@ class PredictionSink(Protocol):
         ...
 
 
-def _output_error(display: str, reason: str) -> InputError:
+def _output_error(display: str, reason: str, what: str = "predictions") -> InputError:
     # stream.errors has no output error class; exit code 2 ("could not be read or
     # written") is the nearest contract
-    return InputError(f"cannot write predictions to {display!r}: {reason}")
+    return InputError(f"cannot write {what} to {display!r}: {reason}")
 
 
 class MqttPredictionSink:
@@ -60,13 +60,13 @@ class MqttPredictionSink:
     the broker's acknowledgements of one frame, default 30).
     """
 
-    def __init__(self, spec: str, **options: Any) -> None:
+    def __init__(self, spec: str, what: str = "predictions", **options: Any) -> None:
         address = parse_address(spec, 8883 if spec.lower().startswith("mqtts") else 1883)
         self.name = address.display
         opts = Options(address, options, "mqtt sink")
         self._topic = address.path
         if not self._topic or "+" in self._topic or "#" in self._topic:
-            raise ConfigError(f"a prediction topic must be a plain topic (no + or #), got "
+            raise ConfigError(f"a topic for {what} must be a plain topic (no + or #), got "
                               f"{self._topic!r} in {self.name!r}")
         self._qos = opts.whole("qos", 1, 0, 1)
         self._retain = opts.flag("retain", False)
@@ -105,7 +105,7 @@ class MqttPredictionSink:
         try:
             self._client.connect(address.host, address.port)
         except OSError as exc:
-            raise _output_error(self.name, exc.strerror or str(exc)) from exc
+            raise _output_error(self.name, exc.strerror or str(exc), what) from exc
         self._client.loop_start()
         self._closed = False
         if not connected.wait(self._timeout) or self._refusal is not None:
@@ -113,13 +113,16 @@ class MqttPredictionSink:
             reason = f"the broker refused the connection: {self._refusal}" \
                 if self._refusal is not None else \
                 f"no answer from the broker within {self._timeout:g} s"
-            raise _output_error(self.name, reason)
+            raise _output_error(self.name, reason, what)
 
     def write(self, frame: pd.DataFrame) -> None:
         """Publish every row and wait until the broker has them (QoS 1)."""
         if not len(frame):
             return
-        lines = frame.to_json(orient="records", lines=True).splitlines()
+        self.publish_texts(frame.to_json(orient="records", lines=True).splitlines())
+
+    def publish_texts(self, lines: list[str], what: str = "predictions") -> None:
+        """Publish each text as one message and wait until the broker has them (QoS 1)."""
         deadline = time.monotonic() + self._timeout
         # paho numbers messages in flight with 16-bit packet ids, so at most _WINDOW
         # are outstanding at once
@@ -131,10 +134,10 @@ class MqttPredictionSink:
                 try:
                     info.wait_for_publish(max(deadline - time.monotonic(), 0.0))
                 except (ValueError, RuntimeError) as exc:
-                    raise _output_error(self.name, str(exc)) from exc
+                    raise _output_error(self.name, str(exc), what) from exc
                 if not info.is_published():
                     raise _output_error(self.name, f"the broker did not acknowledge the "
-                                                   f"predictions within {self._timeout:g} s")
+                                                   f"{what} within {self._timeout:g} s", what)
 
     def close(self) -> None:
         if self._closed:
@@ -153,13 +156,13 @@ class RedisPredictionSink:
     ``timeout`` (socket timeout in s, default 30).
     """
 
-    def __init__(self, spec: str, **options: Any) -> None:
+    def __init__(self, spec: str, what: str = "predictions", **options: Any) -> None:
         address = parse_address(spec, 6379)
         self.name = address.display
         opts = Options(address, options, "redis sink")
         self._stream = opts.text("stream")
         if not self._stream:
-            raise ConfigError(f"a Redis prediction sink needs a stream: add ?stream=KEY "
+            raise ConfigError(f"a Redis stream for {what} needs a name: add ?stream=KEY "
                               f"to {self.name!r}")
         self._maxlen = opts.whole("maxlen", None, 1)
         username = opts.text("username", address.username)
@@ -187,7 +190,7 @@ class RedisPredictionSink:
         try:
             self._client.ping()
         except self._errors as exc:
-            raise _output_error(self.name, str(exc)) from exc
+            raise _output_error(self.name, str(exc), what) from exc
 
     def write(self, frame: pd.DataFrame) -> None:
         """XADD every row in one pipelined round trip."""
@@ -195,15 +198,19 @@ class RedisPredictionSink:
             return
         names = [str(c) for c in frame.columns]
         columns = [_as_text(frame[c]) for c in frame.columns]
+        self.append_entries([[x for pair in zip(names, values) for x in pair]
+                             for values in zip(*columns)])
+
+    def append_entries(self, entries: list[list[str]], what: str = "predictions") -> None:
+        """XADD each entry (field, value, field, value, ...) in one pipelined round trip."""
         trim = ("MAXLEN", "~", self._maxlen) if self._maxlen else ()
         pipe = self._client.pipeline(transaction=False)
-        for values in zip(*columns):
-            args = [x for pair in zip(names, values) for x in pair]
+        for args in entries:
             pipe.execute_command("XADD", self._stream, *trim, "*", *args)
         try:
             pipe.execute()
         except self._errors as exc:
-            raise _output_error(self.name, str(exc)) from exc
+            raise _output_error(self.name, str(exc), what) from exc
 
     def close(self) -> None:
         self._client.close()

@@ -100,7 +100,8 @@ def learn_job(sources: list[str], kw: dict):
         label_window=DEFAULT_LABEL_WINDOW if kw["label_window"] is None
         else kw["label_window"],
         label_seconds=kw["label_seconds"] or 0.0, id_field=kw["id_field"],
-        concern=kw["concern"], **durable)
+        concern=kw["concern"], alerts_path=kw["alerts_path"], alert_every=kw["alert_every"],
+        alert_move=kw["alert_move"], **durable)
 
 
 class _Progress:
@@ -154,6 +155,11 @@ def closing_report(s: dict) -> str:
         lines.append(f"  drift: {s['swaps']:,} confirmed changes (alternates swapped in); "
                      f"{s['drift_alarms']:,} unconfirmed alarms, {s['alternates_started']:,} "
                      f"alternate subtrees started")
+    alerts = s.get("alerts")
+    if alerts:
+        lines.append(f"  alerts: {alerts['raised']:,} raised, {alerts['sent']:,} sent to "
+                     f"{alerts['to']}" + (f", {alerts['pending']:,} not sent yet"
+                                          if alerts["pending"] else ""))
     if s["quarantined"]:
         lines.append(f"  {s['quarantined']:,} records quarantined in "
                      f"{s['outputs']['quarantine']}")

@@ -265,6 +265,16 @@ def output_options() -> Callable:
                type=click.Path(dir_okay=False, allow_dash=True),
                help="Write each record's prediction here ('-' for stdout; .csv for CSV; "
                     "or an mqtt:// topic or redis:// stream)."),
+        option("--alerts", "alerts_path", group=OUTPUTS, metavar="FILE|URL",
+               help="Send an alert (a JSON object) when a rule predicting the class of "
+                    "concern appears, goes or moves a threshold, or a confirmed change "
+                    "happens above one: to a JSON-lines file, an mqtt:// topic, a redis:// "
+                    "stream or an http(s):// URL (POST)."),
+        option("--alert-every", group=OUTPUTS, type=int, default=10_000, show_default=True,
+               help="Records between two comparisons of the rules for alerts."),
+        option("--alert-move", group=OUTPUTS, type=float, default=0.1, show_default=True,
+               help="A threshold move alerts when larger than this share of the range of "
+                    "values seen for its field."),
         option("--events", "events_path", group=OUTPUTS, type=click.Path(dir_okay=False),
                help="Write drift events here (JSON lines: alarms, alternates started, "
                     "swapped in, dropped; with record, time and where in the tree)."),

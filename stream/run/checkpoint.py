@@ -203,6 +203,7 @@ _FINGERPRINT_NAMES = {
     "predictions": "--predictions", "quarantine": "--quarantine", "labels": "--labels",
     "label_window": "--label-window", "label_seconds": "--label-seconds",
     "id_field": "--id-field", "header": "--header", "concern": "--concern",
+    "alerts": "--alerts", "alert_every": "--alert-every", "alert_move": "--alert-move",
 }
 
 
@@ -236,7 +237,9 @@ def job_fingerprint(job) -> dict:
         "quarantine": _path(job.quarantine_path),
         "labels": [_place(s) for s in job.labels], "label_window": job.label_window,
         "label_seconds": job.label_seconds, "id_field": job.id_field,
-        "header": job.header, "concern": job.concern,
+        "header": job.header, "concern": job.concern, "alerts": job.alerts_path and
+        _place(job.alerts_path), "alert_every": job.alerts_path and job.alert_every,
+        "alert_move": job.alerts_path and job.alert_move,
     })
 
 

@@ -189,6 +189,7 @@ class PreparedColumns:
     ids: np.ndarray | None
     unknown_present: dict[str, int]   # values present per field outside the schema
     decimals: dict[str, int]          # per numeric feature, the decimals its values carry
+    ranges: dict[str, tuple[float, float]]   # per numeric feature, its least and most value
 
 
 def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> PreparedColumns:
@@ -212,6 +213,7 @@ def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> P
 
     X = np.empty((n, len(schema.feature_names)))
     decimals: dict[str, int] = {}
+    ranges: dict[str, tuple[float, float]] = {}
     pending: list[tuple[int, str, np.ndarray, list[str | None]]] = []
     for j, (name, kind) in enumerate(zip(schema.feature_names, schema.feature_kinds)):
         raw = column(name)
@@ -222,6 +224,9 @@ def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> P
             X[:, j] = numbers
             if not scoring:
                 decimals[name] = decimals_of(numbers)
+                span = _span(numbers)
+                if span is not None:
+                    ranges[name] = span
         else:
             codes, labels = factorize_labels(raw)
             pending.append((j, name, codes, labels))
@@ -253,7 +258,8 @@ def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> P
                        for name in frame.columns if name not in known}
     return PreparedColumns(batch, schema, scoring, X, np.asarray(batch.lines, dtype=np.int64),
                            problems, bad_rows, pending, raw_target, target_codes,
-                           target_labels, y_values, times, ids, unknown_present, decimals)
+                           target_labels, y_values, times, ids, unknown_present, decimals,
+                           ranges)
 
 
 class Encoder:
@@ -285,6 +291,7 @@ class Encoder:
         self._classes = _Codebook(cap=class_cap)
         self.unknown_fields: dict[str, int] = {}
         self.decimals: dict[str, int] = {}   # numeric feature -> decimals its values carry
+        self.ranges: dict[str, list[float]] = {}   # numeric feature -> [least, most] seen
 
     @property
     def classes(self) -> list[str]:
@@ -362,6 +369,9 @@ class Encoder:
             self.unknown_fields[name] = self.unknown_fields.get(name, 0) + present
         for name, places in prepared.decimals.items():
             self.decimals[name] = max(self.decimals.get(name, 0), places)
+        for name, (lo, hi) in prepared.ranges.items():
+            seen = self.ranges.setdefault(name, [lo, hi])
+            seen[0], seen[1] = min(seen[0], lo), max(seen[1], hi)
         times = prepared.times
         everything = not bad_rows.any()
         return EncodedBatch(
@@ -401,6 +411,7 @@ class Encoder:
                        for name, book in self._books.items() if book.first_pooled is not None},
             "unknown_fields": dict(self.unknown_fields),
             "decimals": dict(self.decimals),
+            "ranges": {name: list(span) for name, span in self.ranges.items()},
         }
 
     @classmethod
@@ -453,7 +464,27 @@ class Encoder:
                 isinstance(v, int) and 0 <= v <= FINE for v in decimals.values()):
             raise fail("decimals is not an object of whole numbers 0.." + str(FINE))
         encoder.decimals = {str(k): int(v) for k, v in decimals.items()}
+        ranges = state.get("ranges", {})  # absent in states written before
+        if not isinstance(ranges, dict) or not all(
+                isinstance(v, list) and len(v) == 2 and all(isinstance(x, (int, float))
+                                                            for x in v)
+                for v in ranges.values()):
+            raise fail("ranges is not an object of [least, most] pairs")
+        encoder.ranges = {str(k): [float(v[0]), float(v[1])] for k, v in ranges.items()}
         return encoder
+
+
+def _span(numbers: np.ndarray) -> tuple[float, float] | None:
+    """Least and most learnable value of a column (None when it has none)."""
+    if numbers.size == 0:
+        return None
+    lo, hi = np.fmin.reduce(numbers), np.fmax.reduce(numbers)
+    if not (abs(lo) <= VALUE_LIMIT and abs(hi) <= VALUE_LIMIT):  # NaN-only, inf or huge
+        kept = numbers[np.abs(numbers) <= VALUE_LIMIT]
+        if kept.size == 0:
+            return None
+        lo, hi = kept.min(), kept.max()
+    return float(lo), float(hi)
 
 
 def _report_unlearnable(numbers: np.ndarray, report, name: str, raw: Any) -> None:

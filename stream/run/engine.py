@@ -49,7 +49,7 @@ from .atomic import write_atomic
 from .encoding import EncodedBatch, Encoder, PreparedColumns, prepare_columns
 from .job import LearnJob
 from .notices import FieldNotices
-from .outputs import RunOutputs, json_default
+from .outputs import RunOutputs, iso, json_default
 from .read_ahead import ReadAhead
 from .reading import held_enough, infer_run_schema, open_run_source
 from .resume import RunCheckpoint
@@ -96,6 +96,11 @@ class LearnRun:
         self.started = self.finished = self.startup_seconds = 0.0
         self.last_batch_at: float | None = None   # when the last records were accounted for
         self.source = None
+        self.alerts = None
+        if job.alerts_path:
+            from .alerts import RunAlerts
+
+            self.alerts = RunAlerts(job, self.warn)
         self.checkpoint = RunCheckpoint(job, self.warn) if job.checkpoint_path else None
         resumed = self.checkpoint.resumed_outputs() if self.checkpoint else None
         self.outputs = RunOutputs(job, stdout or sys.stdout, clock, wall, resumed)
@@ -183,9 +188,14 @@ class LearnRun:
                     and self.task is not None \
                     and self.outputs.last_snapshot_records != self.task.records_learned:
                 self._snapshot()
+            if self.alerts is not None and self.task is not None \
+                    and self.alerts.watch.checked_at != self.task.records_learned:
+                self._check_alerts()
             if self.checkpoint is not None and self.task is not None:
                 failures += self._attempt("checkpoint", job.checkpoint_path,
                                           lambda: self.checkpoint.write(self))
+            if self.alerts is not None:
+                self.alerts.finish(self.checkpoint is not None and self.task is not None)
         finally:
             for signum, handler in handlers.items():
                 signal.signal(signum, handler)
@@ -371,9 +381,11 @@ class LearnRun:
             learned_before = task.records_learned
             scored = task.learn(batch.X[part], batch.y[part], self.encoder)
             self._note_time(batch.times, stop - 1)
-            outputs.write_events(task.take_events(), batch, start - learned_before,
-                                 self.model, self.encoder.categories,
-                                 task.settings.detector)
+            rows = outputs.write_events(task.take_events(), batch, start - learned_before,
+                                        self.model, self.encoder.categories,
+                                        task.settings.detector)
+            if self.alerts is not None:
+                self.alerts.note(rows)
             judged = scored if arrival is None else arrival.part(part)
             rows = task.update_score(batch.y[part], judged, self.encoder, self.job.concern)
             if arrival is None:
@@ -382,6 +394,8 @@ class LearnRun:
                 outputs.log_metrics(row, self.model, self.last_time)
             if outputs.snapshot_due(task.records_learned):
                 self._snapshot()
+            if self.alerts is not None and self.alerts.due(task.records_learned):
+                self._check_alerts()
             start = stop
 
     def _note_time(self, times: np.ndarray | None, index: int) -> None:
@@ -397,6 +411,8 @@ class LearnRun:
         gap = self.job.metrics_every - learned % self.job.metrics_every \
             if self.outputs.metrics_out is not None else 1 << 62
         to_snapshot = self.outputs.records_to_boundary(learned)
+        if self.alerts is not None:
+            gap = min(gap, self.alerts.records_to_boundary(learned))
         return min(gap, to_snapshot) if to_snapshot else gap
 
     # ------------------------------------------------------------------ stopping
@@ -432,6 +448,12 @@ class LearnRun:
                     "leaves": m.n_leaves, "depth": m.depth}
         self.outputs.write_snapshot(rules, header, result, headline, tree_facts(m),
                                     self.task.records_learned)
+
+    def _check_alerts(self) -> None:
+        header = self.header()
+        when = header.get("data_time") or iso(self.wall())
+        self.alerts.check(self.rules(), header, self.task.records_learned, when,
+                          self.encoder.ranges)
 
     def _progress_facts(self) -> dict:
         elapsed = max(self.clock() - self.started, 1e-9)

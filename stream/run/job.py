@@ -49,7 +49,10 @@ class LearnJob:
     ``header`` names the columns of CSV and TSV files instead of their header lines
     (to tell apart columns the file names alike). ``concern`` names the class of concern
     (a class label; ``high`` or ``low`` for a numeric target), which views lead with;
-    without it a class target's rarest class among the first 1,000 labels. Memory: ``category_cap`` distinct values of each category field are kept apart,
+    without it a class target's rarest class among the first 1,000 labels. ``alerts_path``
+    (a file, mqtt://, redis:// or http(s):// URL) receives an alert when the rules
+    predicting it change, checked every ``alert_every`` records; a threshold move alerts
+    beyond ``alert_move`` of the field's range (see :mod:`stream.run.alerts`). Memory: ``category_cap`` distinct values of each category field are kept apart,
     later new values share one code; ``class_cap`` classes at most, a record with one
     more goes to the quarantine (see :class:`stream.run.encoding.Encoder`).
     """
@@ -92,6 +95,9 @@ class LearnJob:
     label_seconds: float = 0.0
     id_field: str | None = None
     concern: str | None = None
+    alerts_path: str | None = None
+    alert_every: int = 10_000
+    alert_move: float = 0.1
 
     def __post_init__(self) -> None:
         require_int("checkpoint interval", self.checkpoint_every, 0)
@@ -123,6 +129,8 @@ class LearnJob:
         require_float("snapshot interval in seconds", self.snapshot_seconds, 0.0, math.inf,
                       low_open=False)
         require_int("metrics interval", self.metrics_every, 1)
+        require_int("alert interval", self.alert_every, 1)
+        require_float("alert threshold move", self.alert_move, 0.0, 1.0, low_open=False)
         require_int("window", self.window, 1)
         if (self.snapshot_every or self.snapshot_seconds) and not self.snapshot_dir:
             raise ConfigError("a snapshot interval needs a snapshot directory")
@@ -132,6 +140,9 @@ class LearnJob:
         if task == "regression" and self.concern not in (None, "high", "low"):
             raise ConfigError(f"--concern for a numeric target must be 'high' or 'low' (the "
                               f"rules to show first), got {self.concern!r}")
+        if task == "regression" and self.alerts_path is not None:
+            raise ConfigError("--alerts needs a class target (alerts follow the rules that "
+                              "predict the class of concern)")
 
     def learner_settings(self, task: str):
         """The settings the learner of ``task`` runs with."""

@@ -223,9 +223,11 @@ class RunOutputs:
         self.metrics_out.flush()
 
     def write_events(self, events, batch: EncodedBatch, offset: int, model, categories: dict,
-                     detector: str) -> None:
-        """Drift events of the last learn call: to the events file and the next snapshot.
-        ``offset`` turns a record count into an index of ``batch``."""
+                     detector: str) -> list[dict]:
+        """Drift events of the last learn call: to the events file and the next snapshot;
+        returns them as written. ``offset`` turns a record count into an index of
+        ``batch``."""
+        rows = []
         for event in events:
             index = event.record + offset
             when = None
@@ -245,10 +247,12 @@ class RunOutputs:
                 "path": [c.to_dict() for c in conditions],
             }
             self.recent_events.append(row)
+            rows.append(row)
             if self.events_out is not None:
                 self.events_out.write(json.dumps(row) + "\n")
         if self.events_out is not None:
             self.events_out.flush()
+        return rows
 
     def snapshot_due(self, learned: int) -> bool:
         return self.schedule is not None and self.schedule.due(learned)

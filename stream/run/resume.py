@@ -115,6 +115,7 @@ class RunCheckpoint:
             "source": json_ready(run.position),
             "outputs": run.outputs.lengths(),
             "labels_source": None, "labels": None,
+            "alerts": run.alerts.state() if run.alerts is not None else None,
         })
         if run.delayed is not None:
             labels_meta, label_arrays = run.delayed.state()
@@ -183,6 +184,12 @@ class RunCheckpoint:
                                                          self.job.class_cap):
             self.warn(f"the checkpoint keeps its category cap {encoder.category_cap:,} and "
                       f"class cap {encoder.class_cap:,}: codes given out stay as they are")
+        if run.alerts is not None and meta.get("alerts") is not None:
+            try:
+                run.alerts.restore(meta["alerts"])
+            except (KeyError, TypeError, ValueError) as exc:
+                raise ModelFileError(f"{checkpoint.path!r}: its alert state is not "
+                                     f"usable: {exc}") from exc
         run.resumed_at = run.records
         self.written = 0
         if run.outputs.snapshots is not None:

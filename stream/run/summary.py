@@ -86,6 +86,7 @@ def run_summary(run: Any) -> dict:
             "resumes": run.resumes, "resumed_at_records": run.resumed_at,
             "last": checkpoint.last},
         "labels": run.delayed.summary() if run.delayed is not None else None,
+        "alerts": run.alerts.counts() if run.alerts is not None else None,
         "outputs": {
             "quarantine": outputs.quarantine.path if outputs.quarantine.count else None,
             "snapshots": job.snapshot_dir if outputs.snapshots_written else None,
