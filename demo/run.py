@@ -3,8 +3,10 @@
     python demo/run.py [--rows 200000] [--out demo/output]
 
 Generates the stream (demo/reefer_fleet.py), learns it with ``sapwood learn`` exactly as
-a user would from a shell, and prints the current rules next to the first snapshot's, so
-the regime change part way through the stream can be seen in the rules themselves.
+a user would from a shell, with an excursion as the class of concern and alerts to a
+file, and prints the current rules next to the first snapshot's, so the regime change
+part way through the stream can be seen in the rules themselves, then the alerts raised
+around it.
 """
 
 from __future__ import annotations
@@ -51,11 +53,15 @@ def main(rows: int, seed: int, out_dir: str) -> None:
     snapshots = out / "snapshots"
     if snapshots.exists():
         shutil.rmtree(snapshots)
+    change = drift_row(rows, 0.6)
     click.echo(f"demo: generating {rows:,} invented reefer reports into {data} "
-               f"(the fleet changes at report {drift_row(rows, 0.6):,})")
+               f"(the fleet changes at report {change:,})")
     write_csv(data, rows, seed=seed, drift_at=0.6)
+    alerts = out / "alerts.jsonl"
+    alerts.unlink(missing_ok=True)
 
-    _run(["learn", str(data), "--target", "excursion_next_hour",
+    _run(["learn", str(data), "--target", "excursion_next_hour", "--concern", "yes",
+          "--alerts", str(alerts), "--alert-every", str(max(rows // 20, 1000)),
           "--summary", str(out / "summary.json"), "--snapshots", str(snapshots),
           "--snapshot-every", str(max(rows // 10, 1000)), "--metrics", str(out / "metrics.jsonl"),
           "--save", str(out / "model.sapwood"), "--quarantine", str(out / "quarantine.jsonl"),
@@ -68,6 +74,7 @@ def main(rows: int, seed: int, out_dir: str) -> None:
     click.echo(_head((snapshots / index[0]["text"]).read_text(), 30))
     click.echo(f"demo: rules now ({summary['learned']:,} records):")
     _run(["rules", str(out / "model.sapwood"), "--top", "8"])
+    click.echo(_alert_counts(alerts, change, rows))
     report = out / "report.html"
     _run(["report", str(snapshots), "--metrics", str(out / "metrics.jsonl"),
           "--events", str(out / "events.jsonl"), "--out", str(report)])
@@ -91,10 +98,28 @@ demo: done. Where things went:
   drift events   {out / 'events.jsonl'}
   saved model    {out / 'model.sapwood'}   (sapwood rules / sapwood score take it)
   report         {report}   (open it in a browser; it loads nothing from the network)
+  alerts         {alerts}   (changes to the rules that predict an excursion)
   energy model   {out / 'energy.sapwood'}   (RMSE {energy_summary['rmse'] or 0:.3f} kWh/h)
 The demo's answer key (the rules that generated the data) is in {HERE / 'README.md'}.
 Learned rules are advisory, not safety interlocks: defer to site safety systems, local
 codes and licensed practice.""")
+
+
+def _alert_counts(path: Path, change: int, rows: int) -> str:
+    """How many alerts came before, around and after the regime change."""
+    raised = [json.loads(line) for line in path.read_text().splitlines()] \
+        if path.exists() else []
+    near = max(rows // 10, 1000)
+    around = [a for a in raised if change <= a["record"] <= change + near]
+    before = [a for a in raised if a["record"] < change]
+    kinds: dict[str, int] = {}
+    for a in around:
+        kinds[a["kind"]] = kinds.get(a["kind"], 0) + 1
+    shown = ", ".join(f"{n} {kind.replace('_', ' ')}" for kind, n in sorted(kinds.items()))
+    return (f"\ndemo: {len(raised)} alerts on the rules that predict an excursion: "
+            f"{len(before)} while the first regime's rules formed, {len(around)} in the "
+            f"{near:,} reports after the change at report {change:,}"
+            + (f" ({shown})" if shown else "") + f"; they are in {path}")
 
 
 def _head(text: str, lines: int) -> str:
