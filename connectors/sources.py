@@ -32,6 +32,7 @@ from .delimited import CsvReader, TsvReader
 from .follow import (FileRestarted, FollowControl, GrowingFile, content_matches,
                      find_by_identity, identity)
 from .jsonlines import JsonLinesReader
+from .parquet import ParquetReader
 
 log = logging.getLogger("sapwood.connectors")
 
@@ -39,6 +40,7 @@ FORMATS = {
     "csv": CsvReader,
     "tsv": TsvReader,
     "jsonl": JsonLinesReader,
+    "parquet": ParquetReader,
 }
 """Format name -> reader class. A reader takes (opener, origin, batch_rows) and lists
 its file name ``extensions``; adding a format is one line here."""
@@ -439,6 +441,21 @@ class ChainedSource:
             iterating.close()
 
 
+def _folder_files(spec: str, fmt: str | None) -> list[str]:
+    """A folder's files of one format (``fmt``, else the one its files' names share,
+    e.g. the parts of a Parquet dataset) in name order; any other spec as it is."""
+    if spec == STDIN or not os.path.isdir(spec):
+        return [spec]
+    names = sorted(n for n in os.listdir(spec) if not n.startswith((".", "_")))
+    kinds = {n: fmt or format_of(n) for n in names}
+    found = sorted({k for k in kinds.values() if k is not None})
+    if len(found) != 1:
+        raise ConfigError(f"the folder {spec!r} must hold files of one format to read "
+                          f"them in name order; it holds "
+                          f"{', '.join(found) if found else 'none sapwood reads'}")
+    return [os.path.join(spec, n) for n in names if kinds[n] == found[0]]
+
+
 def _check_same_columns(first: tuple[str, list[str]], later: tuple[str, list[str]]) -> None:
     (a, cols_a), (b, cols_b) = first, later
     if cols_a == cols_b:
@@ -505,6 +522,7 @@ def open_sources(specs: list[str], fmt: str | None = None, batch_rows: int = 655
     if fmt is not None and fmt not in FORMATS:
         raise ConfigError(f"format must be one of {', '.join(sorted(FORMATS))}, got {fmt!r}")
     batch_rows = require_int("batch rows", batch_rows, 1)
+    specs = [name for spec in specs for name in _folder_files(spec, fmt)]
     if specs.count(STDIN) > 1:
         raise ConfigError("standard input ('-') can be given only once")
     if follow is not None and specs[-1] == STDIN:
