@@ -1,4 +1,5 @@
-"""The broker sources by URL scheme: ``mqtt[s]://`` topics and ``redis[s]://`` streams.
+"""The live sources by URL scheme: ``mqtt[s]://`` topics, ``redis[s]://`` streams and
+``opc.tcp://`` OPC UA variables.
 
 The registry sits above the broker sources and what they share
 (:mod:`connectors.broker_payloads`), so that a new broker is one opener and one line.
@@ -24,11 +25,22 @@ def _open_redis(spec: str, batch_rows: int, **options: Any) -> Source:
     return RedisStreamSource(spec, batch_rows, **options)
 
 
+def _open_opcua(spec: str, batch_rows: int, **options: Any) -> Source:
+    try:
+        import asyncua  # noqa: F401  (the optional extra)
+    except ImportError:
+        raise ConfigError("reading OPC UA needs asyncua: pip install \"sapwood[plant]\"") \
+            from None
+    from .opcua import OpcUaSource
+    return OpcUaSource(spec, batch_rows, **options)
+
+
 BROKERS: dict[str, Callable[..., Source]] = {
     "mqtt": _open_mqtt,
     "mqtts": _open_mqtt,
     "redis": _open_redis,
     "rediss": _open_redis,
+    "opc.tcp": _open_opcua,
 }
 """URL scheme -> opener ``(spec, batch_rows, **options) -> Source``. The client library
 of a broker is imported only when a source of its kind is opened."""
@@ -75,6 +87,7 @@ def open_broker_sources(specs: Sequence[str], batch_rows: int) -> Source | None:
     if not brokers:
         return None
     if len(specs) != 1:
-        raise ConfigError("a broker source (mqtt://, redis://) must be the only source, "
+        raise ConfigError("a live source (mqtt://, redis://, opc.tcp://) must be the only "
+                          "source, "
                           f"got {len(specs)} sources")
     return open_broker(brokers[0], batch_rows)

@@ -59,6 +59,11 @@ from .summary import rules_header, run_summary, tree_facts
 from .tasks import TASKS, warm_up
 
 
+LIVE_INFER_SECONDS = 5.0
+"""A live feed's records held back for schema inference at most this long (then the
+schema is inferred from what came), unless ``INFER_ROWS`` records come first."""
+
+
 class LearnRun:
     """State of one learning run; :meth:`run` drives it to the end of the stream.
 
@@ -237,11 +242,15 @@ class LearnRun:
         self._pending = []
         ahead = None if self._live() else ReadAhead(self.source.batches())
         pairs = ((batch, None) for batch in self.source.batches()) if ahead is None else ahead
+        held_since = None
         try:
             for batch, prepared in pairs:
                 if self.task is None:
                     self._pending.append(batch)
-                    if held_enough(self._pending):
+                    held_since = held_since if held_since is not None else self.clock()
+                    # a live feed that never falls quiet is not held back for long either
+                    if held_enough(self._pending) or (
+                            ahead is None and self.clock() - held_since >= LIVE_INFER_SECONDS):
                         self._learn_pending()
                 else:
                     self._consume(batch, prepared)
