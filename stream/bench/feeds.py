@@ -6,6 +6,8 @@ CSV of the end-to-end suite), and its rate is the summary's ``records_per_second
 
 * a CSV file, without and with a checkpoint every 10,000 records (each checkpoint is the
   whole learner state written with temp file, fsync and rename);
+* the same records as a Parquet file (written by pandas with pyarrow; skipped when the
+  optional extra is not installed), which should read at least as fast as the CSV;
 * a Redis stream filled beforehand (XADD), read through a consumer group, without and
   with checkpoints (entries are acknowledged when the checkpoint holding them is on
   disk);
@@ -155,6 +157,22 @@ def feeds_suite(bench: Bench) -> SuiteResult:
     result.rows.append(_row("CSV file", False, plain, file_rate))
     result.rows.append(_row("CSV file", True, _learn(bench, str(csv_path), True, "file"),
                             file_rate))
+    try:
+        import pandas as pd
+        import pyarrow  # noqa: F401  (the optional extra)
+    except ImportError:
+        result.notes.append("Parquet row skipped: pyarrow is not installed "
+                            "(pip install \"sapwood[parquet]\").")
+    else:
+        parquet_path = csv_path.with_suffix(".parquet")
+        pd.read_csv(csv_path).to_parquet(parquet_path, index=False)
+        bench.say(f"feeds: the same {rows:,} records from a Parquet file")
+        parquet = _row("Parquet file", False, _learn(bench, str(parquet_path), False,
+                                                     "parquet"), file_rate)
+        result.rows.append(parquet)
+        result.checks.append(Check("Parquet file: records/s vs the CSV file",
+                                   parquet["vs_file"], 1.0, ">=", "x"))
+        parquet_path.unlink()
 
     if REDIS_SERVER is None:
         result.notes.append("Redis rows skipped: redis-server is not installed "
