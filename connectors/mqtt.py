@@ -423,6 +423,9 @@ class MqttSource:
                 last_message = now
                 if have >= self._batch_rows or now - self._first_arrival >= self._linger:
                     yield self._take()
+                    # quiet time starts when the reader is back: while it learned, the
+                    # broker held back what its window of unacknowledged messages kept
+                    last_message = self._clock()
                     continue
                 timeout = max(0.0, self._first_arrival + self._linger - now)
             else:

@@ -207,6 +207,7 @@ class OpcUaSource:
                          or len(rows) * self._interval >= 0.2):
                 yield self._batch(rows)
                 rows = []
+                last_change = self._clock()   # quiet time counts from the reader's return
                 continue
             quiet = now - last_change
             if record is None and quiet >= max(3 * self._interval, 2.0) and not self._alive():

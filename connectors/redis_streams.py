@@ -428,8 +428,8 @@ class RedisStreamSource:
                 self._cursor = entries[-1][0]
             batch = self._batch(entries)
             if batch is not None:
-                last_entry = self._clock()
                 yield batch
+                last_entry = self._clock()   # quiet time counts from the reader's return
             elif not pending:
                 if self._idle_exit is not None and \
                         self._clock() - last_entry >= self._idle_exit:

@@ -324,6 +324,24 @@ def test_the_broker_window_is_held_until_commit(broker, cid):
     assert sum(rest) == 7
 
 
+def test_time_spent_learning_a_batch_is_not_quiet_time(broker, cid):
+    # Found in the benchmark: a backlog larger than the Receive Maximum (MQTT 5.0
+    # section 3.1.2.11.3) arrives one window at a time, the next only after the PUBACKs
+    # of the last; a reader that takes longer than idle_exit to learn a batch must not
+    # find the feed "quiet" when it comes back, before the broker could send more.
+    url = broker.url("slow/+", client_id=cid, receive_max=20)
+    subscribe_once(url)
+    publish(broker, records(70, topic="slow/a"))
+    src = source(url, 100, idle_exit=0.5)
+    got = 0
+    for batch in src.batches():
+        got += len(batch)
+        time.sleep(0.8)                  # learning the batch takes longer than idle_exit
+        src.commit(batch.position)
+    src.close()
+    assert got == 70
+
+
 def test_seek_refuses_another_clients_position(broker, cid):
     src = source(broker.url("x/y", client_id=cid), 10)
     with pytest.raises(ConfigError, match="the checkpoint is for MQTT client id 'other'"):
