@@ -5,6 +5,7 @@ the server is stopped and started again mid-run, and the run goes on."""
 
 from __future__ import annotations
 
+import json
 import logging
 import random
 import threading
@@ -31,8 +32,10 @@ class Plant:
     """An asyncua server with variables x, y and fault (string node ids in namespace 2)
     and a thread that writes a seeded random x, y and fault = (x > 0.6) every ``step`` s."""
 
-    def __init__(self, port: int, step: float = 0.02, seed: int = 5) -> None:
+    def __init__(self, port: int, step: float = 0.02, seed: int = 5,
+                 password: str | None = None) -> None:
         self.port, self.step = port, step
+        self.password = password
         self.rng = random.Random(seed)
         self.written = 0
         self._server = None
@@ -42,6 +45,9 @@ class Plant:
     def start(self) -> "Plant":
         server = Server()
         server.set_endpoint(f"opc.tcp://127.0.0.1:{self.port}/plant/")
+        if self.password is not None:   # user name and password required (OPC UA Part 4)
+            server.set_identity_tokens([ua.UserNameIdentityToken])
+            server.aio_obj.iserver.set_user_manager(_Operators(self.password))
         idx = server.register_namespace("urn:sapwood-tests")
         line = server.nodes.objects.add_object(idx, "Line")
         self.vars = {name: line.add_variable(ua.NodeId(name, idx), name, value)
@@ -129,6 +135,43 @@ def test_the_rule_reads_x_above_0_6(tmp_path):
     thresholds = [c.value for r in rules for c in r.conditions if c.feature == "x"]
     assert thresholds and all(0.5 <= t <= 0.7 for t in thresholds), thresholds
     assert not any(c.feature == "y" for r in rules for c in r.conditions)
+
+
+class _Operators:
+    """Lets in the user "operator" with the given password, nobody else."""
+
+    def __init__(self, password: str) -> None:
+        self.password = password
+
+    def get_user(self, iserver, username=None, password=None, certificate=None):
+        from asyncua.server.user_managers import User, UserRole
+
+        if username == "operator" and password == self.password:
+            return User(role=UserRole.User)
+        return None
+
+
+def test_a_server_that_wants_a_password_takes_it_from_the_environment(monkeypatch):
+    secret = "pw-Ua83kq"
+    plant = Plant(free_port(), password=secret).start()
+    stopper = threading.Timer(3.0, plant.pause)
+    monkeypatch.setenv("PLANT_PASS", secret)
+    said: list[str] = []
+    try:
+        with pytest.raises(InputError) as refused:   # the wrong password is refused
+            run_learn(LearnJob(sources=[plant.url(interval=0.05, retry=1, username="operator",
+                                                  password="wrong")], target="fault"),
+                      warn=said.append)
+        stopper.start()
+        summary = run_learn(LearnJob(
+            sources=[plant.url(interval=0.05, idle_exit=1, username="operator",
+                               password_env="PLANT_PASS")], target="fault"))
+    finally:
+        stopper.cancel()
+        plant.stop()
+    assert "wrong" not in str(refused.value) and "password=***" in str(refused.value)
+    assert summary["learned"] >= 20
+    assert secret not in json.dumps(summary) and "wrong" not in " ".join(said)
 
 
 def test_bad_urls_are_named():
