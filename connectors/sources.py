@@ -443,16 +443,19 @@ class ChainedSource:
 
 def _folder_files(spec: str, fmt: str | None) -> list[str]:
     """A folder's files of one format (``fmt``, else the one its files' names share,
-    e.g. the parts of a Parquet dataset) in name order; any other spec as it is."""
+    e.g. the parts of a Parquet dataset) in name order; any other spec, and a folder
+    holding no file sapwood reads, as it is (opening it then says what is wrong)."""
     if spec == STDIN or not os.path.isdir(spec):
         return [spec]
     names = sorted(n for n in os.listdir(spec) if not n.startswith((".", "_")))
     kinds = {n: fmt or format_of(n) for n in names}
     found = sorted({k for k in kinds.values() if k is not None})
+    if not found:
+        return [spec]
     if len(found) != 1:
         raise ConfigError(f"the folder {spec!r} must hold files of one format to read "
                           f"them in name order; it holds "
-                          f"{', '.join(found) if found else 'none sapwood reads'}")
+                          f"{', '.join(found)}")
     return [os.path.join(spec, n) for n in names if kinds[n] == found[0]]
 
 

@@ -192,6 +192,9 @@ class RunAlerts:
             self.warn(f"{left:,} alert(s) could not be sent to {self.delivery.sink.name!r}"
                       + ("; the checkpoint keeps them and the next run sends them"
                          if checkpointed else "; without --checkpoint they are lost"))
+
+    def close(self) -> None:
+        """Release the sink (its connection); safe to call twice."""
         self.delivery.sink.close()
 
     def counts(self) -> dict:

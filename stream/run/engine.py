@@ -207,6 +207,8 @@ class LearnRun:
             self.source.close()
             if self.delayed is not None:
                 self.delayed.close()
+            if self.alerts is not None:
+                self.alerts.close()
             self.outputs.close()
         if job.save_path and self.task is not None:
             failures += self._attempt("model", job.save_path,

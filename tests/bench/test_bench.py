@@ -134,6 +134,11 @@ def test_feeds_suite_learns_every_record_from_each_feed(tmp_path):
     run = Bench(tmp_path, records=12_000, repeats=1, say=lambda message: None)
     (feeds,) = run_bench(run, ["feeds"])
     expected = [("CSV file", "none"), ("CSV file", "every 10,000")]
+    try:
+        import pyarrow  # noqa: F401  (the optional extra adds the Parquet row)
+        expected.append(("Parquet file", "none"))
+    except ImportError:
+        pass
     if REDIS_SERVER is not None:
         expected += [("Redis stream", "none"), ("Redis stream", "every 10,000")]
     if MOSQUITTO is not None:

@@ -227,7 +227,7 @@ def test_unknown_file_format_exits_1(tmp_path, capsys):
     code, _, err = run_main(["learn", "data.txt", "--target", "b"], capsys)
     assert code == 1
     assert last_line(err) == ("sapwood: cannot tell the format of 'data.txt' from its name; "
-                              "give one of csv, jsonl, tsv")
+                              "give one of csv, jsonl, parquet, tsv")
 
 
 def test_rules_top_must_be_positive(agrawal, tmp_path, capsys):
@@ -594,7 +594,7 @@ def test_demo_runner_smoke(tmp_path):
         if line.startswith("  ") and len(parts) >= 2:
             places[parts[0].strip()] = Path(parts[1].strip())
     assert set(places) == {"data", "summary", "metrics log", "snapshots", "drift events",
-                           "saved model", "report", "energy model"}
+                           "saved model", "report", "alerts", "energy model"}
     for label, path in places.items():
         assert path.exists(), f"{label}: {path} was announced but does not exist"
     index = json.loads((places["snapshots"] / "index.json").read_text())["snapshots"]

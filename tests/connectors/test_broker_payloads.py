@@ -366,14 +366,14 @@ def test_with_retries_returns_after_a_success_and_lets_other_errors_through():
 # ---------------------------------------------------------------------------------------
 
 def test_registry_and_hook():
-    assert sorted(BROKERS) == ["mqtt", "mqtts", "redis", "rediss"]
+    assert sorted(BROKERS) == ["mqtt", "mqtts", "opc.tcp", "redis", "rediss"]
     assert is_broker_spec("MQTT://h/t") and not is_broker_spec("plant.csv")
     assert open_broker_sources(["a.csv", "-"], 10) is None
     with pytest.raises(ConfigError, match="must be the only source"):
         open_broker_sources(["a.csv", "redis://h?stream=s"], 10)
     with pytest.raises(ConfigError) as err:
         open_broker(f"amqp://u:{SECRET}@h/q", 10)
-    assert "broker scheme must be one of mqtt, mqtts, redis, rediss, got 'amqp'" \
+    assert "broker scheme must be one of mqtt, mqtts, opc.tcp, redis, rediss, got 'amqp'" \
         in str(err.value)
     assert SECRET not in str(err.value)
 

@@ -44,7 +44,7 @@ def test_sniffing(head, fmt):
 
 
 def test_registry_is_the_cli_choice_list():
-    assert sorted(FORMATS) == ["csv", "jsonl", "tsv"]
+    assert sorted(FORMATS) == ["csv", "jsonl", "parquet", "tsv"]
     assert all(hasattr(reader, "extensions") for reader in FORMATS.values())
 
 
@@ -148,11 +148,11 @@ def test_corrupt_gzip_is_an_input_error(tmp_path):
 @pytest.mark.parametrize("call, message", [
     (lambda: open_sources([]), "give at least one source (a file name, or - for standard "
                                "input)"),
-    (lambda: open_sources(["x.csv"], fmt="xls"), "format must be one of csv, jsonl, tsv, "
+    (lambda: open_sources(["x.csv"], fmt="xls"), "format must be one of csv, jsonl, parquet, tsv, "
                                                  "got 'xls'"),
     (lambda: open_sources(["-", "-"]), "standard input ('-') can be given only once"),
     (lambda: open_sources(["x.dat"]), "cannot tell the format of 'x.dat' from its name; "
-                                      "give one of csv, jsonl, tsv"),
+                                      "give one of csv, jsonl, parquet, tsv"),
     (lambda: open_sources(["-"], batch_rows=0), "batch rows must be a whole number >= 1, "
                                                 "got 0"),
 ])

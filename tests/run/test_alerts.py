@@ -97,6 +97,15 @@ def switching(tmp_path_factory) -> Path:
                   itertools.islice(stream, 30_000))
 
 
+@pytest.fixture(scope="module")
+def expected(switching, tmp_path_factory) -> list[dict]:
+    """The alerts of an uninterrupted run of the switching stream, sent to a file."""
+    path = tmp_path_factory.mktemp("expected") / "alerts.jsonl"
+    run_learn(LearnJob(sources=[str(switching)], target="group", alerts_path=str(path),
+                       alert_every=5_000))
+    return _alerts(path)
+
+
 def _alerts(path: Path) -> list[dict]:
     return [json.loads(line) for line in path.read_text().splitlines()]
 
@@ -139,12 +148,10 @@ class _Collector(http.server.BaseHTTPRequestHandler):
         pass
 
 
-def test_alerts_a_server_could_not_take_are_sent_after_a_restart(switching, tmp_path):
+def test_alerts_a_server_could_not_take_are_sent_after_a_restart(switching, expected,
+                                                                tmp_path):
     """At least once: a checkpoint keeps the alerts the sink refused; the same command
     run again sends them, under the same ids as an uninterrupted run's."""
-    expected = tmp_path / "expected.jsonl"
-    run_learn(LearnJob(sources=[str(switching)], target="group", alerts_path=str(expected),
-                       alert_every=5_000))
     port = free_port()
     url = f"http://127.0.0.1:{port}/alerts"
     job = dict(sources=[str(switching)], target="group", alerts_path=url, alert_every=5_000,
@@ -152,7 +159,7 @@ def test_alerts_a_server_could_not_take_are_sent_after_a_restart(switching, tmp_
     said = []
     first = run_learn(LearnJob(**job), warn=said.append)   # nobody listens on the port
     assert first["alerts"]["sent"] == 0
-    assert first["alerts"]["pending"] == first["alerts"]["raised"] == len(_alerts(expected))
+    assert first["alerts"]["pending"] == first["alerts"]["raised"] == len(expected)
     assert any("the checkpoint keeps them" in text for text in said)
     _Collector.received = []
     server = http.server.ThreadingHTTPServer(("127.0.0.1", port), _Collector)
@@ -164,18 +171,15 @@ def test_alerts_a_server_could_not_take_are_sent_after_a_restart(switching, tmp_
         server.shutdown()
         server.server_close()
     assert second["alerts"]["pending"] == 0
-    assert _timeless(_Collector.received) == _timeless(_alerts(expected))
+    assert _timeless(_Collector.received) == _timeless(expected)
 
 
 @pytest.mark.skipif(MOSQUITTO is None, reason="mosquitto is not installed "
                                               "(bash .ci/brokers.sh install adds it)")
-def test_alerts_reach_an_mqtt_topic(switching, tmp_path):
+def test_alerts_reach_an_mqtt_topic(switching, expected, tmp_path):
     import paho.mqtt.client as mqtt
     from paho.mqtt.enums import CallbackAPIVersion
 
-    expected = tmp_path / "expected.jsonl"
-    run_learn(LearnJob(sources=[str(switching)], target="group", alerts_path=str(expected),
-                       alert_every=5_000))
     broker = LocalMosquitto(tmp_path).start()
     got, subscribed = [], threading.Event()
     client = mqtt.Client(CallbackAPIVersion.VERSION2)
@@ -188,7 +192,7 @@ def test_alerts_reach_an_mqtt_topic(switching, tmp_path):
         assert subscribed.wait(10)
         run_learn(LearnJob(sources=[str(switching)], target="group",
                            alerts_path=broker.url("plant/alerts"), alert_every=5_000))
-        want = _alerts(expected)
+        want = expected
         for _ in range(100):
             if len(got) >= len(want):
                 break
@@ -202,17 +206,14 @@ def test_alerts_reach_an_mqtt_topic(switching, tmp_path):
 
 @pytest.mark.skipif(REDIS_SERVER is None, reason="redis-server is not installed "
                                                  "(bash .ci/brokers.sh install adds it)")
-def test_alerts_reach_a_redis_stream(switching, tmp_path):
-    expected = tmp_path / "expected.jsonl"
-    run_learn(LearnJob(sources=[str(switching)], target="group", alerts_path=str(expected),
-                       alert_every=5_000))
+def test_alerts_reach_a_redis_stream(switching, expected, tmp_path):
     server = LocalRedis(tmp_path, durable=False).start()
     try:
         run_learn(LearnJob(sources=[str(switching)], target="group",
                            alerts_path=server.url(stream="alerts"), alert_every=5_000))
         entries = server.client().xrange("alerts")
         got = [json.loads(fields[b"alert"]) for _, fields in entries]
-        assert _timeless(got) == _timeless(_alerts(expected))
+        assert _timeless(got) == _timeless(expected)
         assert [fields[b"id"].decode() for _, fields in entries] == [a["id"] for a in got]
     finally:
         server.stop()

@@ -290,10 +290,12 @@ def test_report_loads_clean_with_charts_drawn(browser, report_file, tmp_path):
         assert layout["title"] == "sapwood report: approved"
         assert layout["safety"] > 0 and layout["ruleRows"] > 1
         charts = {c["id"]: c for c in layout["charts"]}
-        assert set(charts) == {"accuracy-chart", "kappa-chart", "tree-chart", "churn-chart"}
+        # the class of concern's recall and precision: the run chose the rarer class
+        assert set(charts) == {"accuracy-chart", "concern-chart", "kappa-chart", "tree-chart",
+                               "churn-chart"}
         for chart in charts.values():
             assert chart["width"] > 300 and chart["height"] > 100, chart
-        for name in ("accuracy-chart", "kappa-chart", "tree-chart"):
+        for name in ("accuracy-chart", "concern-chart", "kappa-chart", "tree-chart"):
             assert charts[name]["lines"] and min(charts[name]["lines"]) > 10
             assert charts[name]["markers"] == len(EVENTS)
         assert charts["churn-chart"]["bars"] and min(charts["churn-chart"]["bars"]) > 0
