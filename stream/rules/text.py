@@ -8,7 +8,7 @@ from stream.shown import printable
 from stream.tree.paths import Condition
 
 from .rule import Rule
-from .thresholds import Thresholds
+from .thresholds import Thresholds, format_number
 
 MISSING_MARK = "*"
 """Marks a condition that records missing the field also meet (they follow its branch)."""
@@ -60,16 +60,6 @@ def uses_marks(rules: Sequence[Rule]) -> bool:
     listing needs :data:`MARKS_LEGEND`)."""
     return any(c.missing or (c.op in ("in", "not in") and c.branch)
                for r in rules for c in r.conditions)
-
-
-def format_number(value: float) -> str:
-    """Compact, fixed rendering of a threshold: up to 4 decimals, trailing zeros cut."""
-    if value == 0:
-        return "0"
-    text = f"{value:.4f}".rstrip("0").rstrip(".")
-    if text in ("0", "-0"):
-        return f"{value:.3g}"
-    return text
 
 
 def format_condition(conditions: Sequence[Condition], style: Thresholds | None = None) -> str:

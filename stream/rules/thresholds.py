@@ -10,7 +10,7 @@ views' ``--exact``) prints it in full.
 
 The decimals per field come from the run (``decimals`` in a snapshot's header or a model
 file), estimated from an even sample of each batch's values; rule sets without them keep
-the fixed rendering of :func:`stream.rules.text.format_number`.
+the fixed rendering of :func:`format_number`.
 """
 
 from __future__ import annotations
@@ -41,8 +41,6 @@ class Thresholds:
 
     def number(self, feature: str, value: float) -> str:
         """``value``, a threshold on ``feature``, as the text forms print it."""
-        from .text import format_number
-
         value = float(value)
         if self.exact:
             return repr(value).removesuffix(".0")
@@ -56,8 +54,6 @@ class Thresholds:
     def move(self, feature: str, old: float, new: float) -> str:
         """A threshold's move as ``12 -> 13 (+1)``, the change taken between the printed
         values; ``(the same at the data's resolution)`` when they print alike."""
-        from .text import format_number
-
         before, after = self.number(feature, old), self.number(feature, new)
         if before == after and float(old) != float(new):
             return f"{before} -> {after} (the same at the data's resolution)"
@@ -76,6 +72,16 @@ class Thresholds:
         a, b = cls.of(old).decimals, cls.of(new).decimals
         merged = {k: max(a.get(k, 0), b.get(k, 0)) for k in set(a) & set(b)}
         return cls(merged, exact)
+
+
+def format_number(value: float) -> str:
+    """Compact, fixed rendering of a threshold: up to 4 decimals, trailing zeros cut."""
+    if value == 0:
+        return "0"
+    text = f"{value:.4f}".rstrip("0").rstrip(".")
+    if text in ("0", "-0"):
+        return f"{value:.3g}"
+    return text
 
 
 def on_grid(value: float, places: int) -> str:

@@ -19,7 +19,7 @@ import os
 from typing import Any
 
 from stream.errors import ModelFileError
-from stream.rules.text import format_number
+from stream.rules.thresholds import format_number
 
 EVENT_KINDS = ("alarm", "start", "swap", "drop")
 

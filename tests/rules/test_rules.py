@@ -42,7 +42,8 @@ from stream.classify.tables import (CHILD_START, CREATED, DEPTH, EQUALS, FEATURE
 from stream.cli.main import main
 from stream.rules.classify import extract_rules
 from stream.rules.rule import Rule, rule_id, rules_from_payload, rules_payload, sort_rules
-from stream.rules.text import format_number, render_text
+from stream.rules.text import render_text
+from stream.rules.thresholds import format_number
 from stream.run.engine import run_learn
 from stream.run.job import LearnJob
 from stream.run.scoring import score_sources
