@@ -48,6 +48,14 @@ def learn(sources, **kw) -> None:
     quiet = kw.pop("quiet")
     job = learn_job(list(sources), kw)
     progress = _Progress()
+    if job.by is not None:
+        from stream.run.keyed import KeyedRun
+
+        summary = KeyedRun(job, progress=progress).run()
+        progress.done()
+        if not quiet:
+            echo(keyed_report(summary), err=True)
+        return
     try:
         summary = LearnRun(job, progress=progress).run()
     except SapwoodError as exc:   # learned, then the input broke or a result failed
@@ -101,7 +109,8 @@ def learn_job(sources: list[str], kw: dict):
         else kw["label_window"],
         label_seconds=kw["label_seconds"] or 0.0, id_field=kw["id_field"],
         concern=kw["concern"], alerts_path=kw["alerts_path"], alert_every=kw["alert_every"],
-        alert_move=kw["alert_move"], **durable)
+        alert_move=kw["alert_move"], by=kw["by"], keys_in_memory=kw["keys_in_memory"],
+        **durable)
 
 
 class _Progress:
@@ -176,6 +185,30 @@ def closing_report(s: dict) -> str:
         lines.append(f"  checkpoint: {checkpoint['path']}")
     if s["outputs"].get("predictions"):
         lines.append(CAUTION)
+    return "\n".join(lines)
+
+
+def keyed_report(s: dict) -> str:
+    """What a finished keyed run says on stderr."""
+    lines = [f"sapwood: learned {s['learned']:,} of {s['records']:,} records in "
+             f"{s['seconds']:.2f} s ({(s['records_per_second'] or 0):,.0f} records/s), "
+             f"one tree for each of {s['keys']:,} values of {printable(s['by'])}"]
+    if s.get("task") == "regression" and s.get("rmse") is not None:
+        lines.append(f"  over all keys: mean absolute error {_number(s.get('mae'))}, "
+                     f"RMSE {_number(s.get('rmse'))}")
+    elif s.get("accuracy") is not None:
+        lines.append(f"  over all keys: accuracy {_percent(s.get('accuracy'))}")
+    if s.get("evictions"):
+        lines.append(f"  {s['evictions']:,} times a tree was saved to make room "
+                     f"(--keys-in-memory {s['keys_in_memory']:,}), {s['reloads']:,} reloaded")
+    if s["quarantined"]:
+        lines.append(f"  {s['quarantined']:,} records quarantined (without a key: "
+                     f"{s['quarantine']}; others in each key's folder)")
+    for index in s.get("index", []):
+        lines.append(f"  keys: {index}")
+    if s.get("stopped") and s.get("checkpoint"):
+        lines.append(f"  stopped ({s['stopped']}); the same command goes on from "
+                     f"checkpoint {s['checkpoint']['path']}")
     return "\n".join(lines)
 
 

@@ -15,6 +15,7 @@ import click
 from stream.errors import EXIT_USAGE, SapwoodError
 from stream.rules.text import CAUTION
 
+from .keys import key_option
 from .output import echo
 from .options import (Whole, concern_option, exact_option, form_option, format_option, option,
                       parse_kinds)
@@ -40,6 +41,7 @@ def cli() -> None:
               help="Where predictions go ('-' for stdout; .csv for CSV).")
 @click.option("--quarantine", "quarantine_path", type=click.Path(dir_okay=False),
               help="Where rejected records go.")
+@key_option("model_path")
 def score(model_path, sources, fmt, predictions_path, quarantine_path) -> None:
     """Predict SOURCE... with a saved MODEL, without learning."""
     from stream.run.scoring import score_sources
@@ -57,6 +59,7 @@ def score(model_path, sources, fmt, predictions_path, quarantine_path) -> None:
              "those covering the most records.")
 @concern_option()
 @exact_option()
+@key_option("path")
 def rules(path, form, form_old, top, concern, exact) -> None:
     """Print the rules of a saved MODEL, a snapshot file, or the newest snapshot of a
     snapshot directory, those predicting the class of concern first."""
@@ -111,10 +114,12 @@ def _register_commands() -> None:
     """Commands that live in their own modules (operator views, the benchmark)."""
     from stream.bench.command import command as bench_command
 
+    from .keys import keys
     from .learn import learn
     from .views import COMMANDS as view_commands
 
     cli.add_command(learn, "learn")
+    cli.add_command(keys, "keys")
     for name, command in view_commands.items():
         cli.add_command(command, name)
     cli.add_command(bench_command, "bench")

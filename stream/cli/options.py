@@ -208,6 +208,13 @@ def input_options() -> Callable:
                     "recall and F1 the summary and metrics carry [the rarest class among "
                     "the first 1,000 labels]; for a numeric target high or low (the rules "
                     "predicting the highest, or lowest, values first)."),
+        option("--by", "by", group=INPUT, default=None, metavar="FIELD",
+               help="Learn one tree per value of FIELD (a line, site or asset "
+                    "family): each output gets a folder per key, with keys.json listing "
+                    "the keys."),
+        option("--keys-in-memory", group=INPUT, type=int, default=1000, show_default=True,
+               help="With --by: trees held in memory; the least recently seen are "
+                    "saved to disk and reloaded when their key returns."),
         format_option(),
         option("--schema", "schema_path", group=INPUT, type=click.Path(dir_okay=False),
                help="Schema file (see `sapwood schema`); otherwise inferred."),
@@ -370,11 +377,10 @@ def feed_options() -> Callable:
                help="With --follow: how often a quiet file is checked."),
         option("--idle-exit", group=FEEDS, type=float, default=None,
                help="With --follow: end after this many seconds without new records."),
-        option("--checkpoint", "checkpoint_path", group=FEEDS,
-               type=click.Path(dir_okay=False),
-               help="Keep the run's whole state in this file; the same command resumes "
-                    "from it after a stop or crash (the previous one is kept as "
-                    "FILE.prev)."),
+        option("--checkpoint", "checkpoint_path", group=FEEDS, type=click.Path(),
+               help="Keep the run's whole state in this file (with --by: this folder); "
+                    "the same command resumes from it after a stop or crash (the "
+                    "previous one is kept as FILE.prev)."),
         option("--checkpoint-every", group=FEEDS, type=int, default=None,
                help="Records between checkpoints [100000]; 0 for none."),
         option("--checkpoint-seconds", group=FEEDS, type=float, default=None,

@@ -19,6 +19,7 @@ import click
 from stream.errors import ConfigError, InputError
 from stream.rules.text import CAUTION
 
+from .keys import key_option
 from .output import echo
 from .options import (Number, Whole, concern_option, exact_option, form_option, format_option,
                       option, renamed)
@@ -45,6 +46,7 @@ def _iso_now() -> str:
              "rule whose conditions and outcome stayed the same.")
 @concern_option()
 @exact_option()
+@key_option("paths")
 def diff(paths, first, last, form, form_old, min_shift, concern, exact) -> None:
     """Compare two rule sets: the newest two snapshots of DIRECTORY (or --from/--to), or
     two snapshot or model files OLD and NEW.
@@ -95,6 +97,7 @@ def diff(paths, first, last, form, form_old, min_shift, concern, exact) -> None:
                    "thresholds in full (not cut to the decimals the data carry).")
 @click.option("--title", default=None, help="Heading of the note.")
 @concern_option()
+@key_option("path")
 def notes(path, since, label, top, exact, title, concern) -> None:
     """Write the current rules as Markdown for a ticket or a shift note.
 
@@ -151,6 +154,7 @@ def notes(path, since, label, top, exact, title, concern) -> None:
         show_default=True, help="Text for people, or one JSON object per record.")
 @renamed("--output", "--form", "form", type=click.Choice(["text", "json"]))
 @option("--limit", type=Whole(1), default=None, help="Explain at most this many records.")
+@key_option("path")
 def explain(path, sources, records, fmt, form, form_old, limit) -> None:
     """Say which rule scored each record: the rule, its leaf's class counts and confidence,
     and the path of tests from the root with the record's values.
@@ -298,6 +302,7 @@ def _explain_with_rules(path, sources, records, fmt, output, limit) -> None:
               help="Seconds between refreshes.")
 @click.option("--once", is_flag=True, help="Show the view once and stop.")
 @exact_option()
+@key_option("snapshot_dir", "metrics_path", "events_path")
 def watch(snapshot_dir, metrics_path, events_path, interval, once, exact) -> None:
     """Follow a running learner: current rules, headline metrics with their trend, and the
     latest drift events, redrawn in place (on a terminal) until Ctrl-C.
@@ -330,6 +335,7 @@ def watch(snapshot_dir, metrics_path, events_path, interval, once, exact) -> Non
 @click.option("--title", default=None, help="Title of the page.")
 @concern_option()
 @exact_option()
+@key_option("snapshot_dir", "metrics_path", "events_path")
 def report(snapshot_dir, metrics_path, events_path, out_path, title, concern, exact) -> None:
     """Write one self-contained HTML page about a run: metrics over time with drift events,
     tree size, rule churn per snapshot, the current rules, the changes from the first

@@ -239,7 +239,7 @@ def job_fingerprint(job) -> dict:
         "label_seconds": job.label_seconds, "id_field": job.id_field,
         "header": job.header, "concern": job.concern, "alerts": job.alerts_path and
         _place(job.alerts_path), "alert_every": job.alerts_path and job.alert_every,
-        "alert_move": job.alerts_path and job.alert_move,
+        "alert_move": job.alerts_path and job.alert_move, "by": job.by,
     })
 
 

@@ -74,14 +74,16 @@ class LearnRun:
     def __init__(self, job: LearnJob, clock: Callable[[], float] = time.perf_counter,
                  wall: Callable[[], float] = time.time, stdout: TextIO | None = None,
                  progress: Callable[[dict], None] | None = None,
-                 warn: Callable[[str], None] | None = None) -> None:
+                 warn: Callable[[str], None] | None = None,
+                 schema: Schema | None = None) -> None:
         self.job = job
         self.clock = clock
         self.wall = wall
         self.progress = progress
         self.warn = warn or (lambda text: print(f"sapwood: warning: {text}",
                                                 file=sys.stderr, flush=True))
-        self.schema: Schema | None = load_schema(job.schema_path) if job.schema_path else None
+        self.schema: Schema | None = schema if schema is not None else \
+            load_schema(job.schema_path) if job.schema_path else None
         if self.schema is not None and self.schema.target != job.target:
             raise ConfigError(f"the schema's target is {self.schema.target!r} but the "
                               f"target asked for is {job.target!r}")
@@ -189,27 +191,43 @@ class LearnRun:
                           f"went to the quarantine {self.outputs.quarantine.path!r} "
                           f"(the first: {self._first_unread.message()}); no schema was "
                           f"inferred and no model written")
-            if self.stopped is None and self.outputs.snapshots is not None \
-                    and self.task is not None \
-                    and self.outputs.last_snapshot_records != self.task.records_learned:
-                self._snapshot()
-            if self.alerts is not None and self.task is not None \
-                    and self.alerts.watch.checked_at != self.task.records_learned:
-                self._check_alerts()
-            if self.checkpoint is not None and self.task is not None:
-                failures += self._attempt("checkpoint", job.checkpoint_path,
-                                          lambda: self.checkpoint.write(self))
-            if self.alerts is not None:
-                self.alerts.finish(self.checkpoint is not None and self.task is not None)
+            failures += self._conclude()
         finally:
             for signum, handler in handlers.items():
                 signal.signal(signum, handler)
-            self.source.close()
-            if self.delayed is not None:
-                self.delayed.close()
-            if self.alerts is not None:
-                self.alerts.close()
-            self.outputs.close()
+            self._close()
+        return self._report(failures, unreadable)
+
+    def _conclude(self) -> list[str]:
+        """The last snapshot, alert check and checkpoint of a run that reached its end
+        (or a stop); returns what could not be written."""
+        failures: list[str] = []
+        if self.stopped is None and self.outputs.snapshots is not None \
+                and self.task is not None \
+                and self.outputs.last_snapshot_records != self.task.records_learned:
+            self._snapshot()
+        if self.alerts is not None and self.task is not None \
+                and self.alerts.watch.checked_at != self.task.records_learned:
+            self._check_alerts()
+        if self.checkpoint is not None and self.task is not None:
+            failures += self._attempt("checkpoint", self.job.checkpoint_path,
+                                      lambda: self.checkpoint.write(self))
+        if self.alerts is not None:
+            self.alerts.finish(self.checkpoint is not None and self.task is not None)
+        return failures
+
+    def _close(self) -> None:
+        """Close the source, label feed, alert sink and outputs."""
+        self.source.close()
+        if self.delayed is not None:
+            self.delayed.close()
+        if self.alerts is not None:
+            self.alerts.close()
+        self.outputs.close()
+
+    def _report(self, failures: list[str], unreadable: InputError | None = None) -> dict:
+        """Save the model, write the summary; raise what went wrong after that."""
+        job = self.job
         if job.save_path and self.task is not None:
             failures += self._attempt("model", job.save_path,
                                       lambda: self.save(job.save_path))
@@ -228,6 +246,40 @@ class LearnRun:
         if failures:
             raise OutputError("; ".join(failures), summary)
         return summary
+
+    # ------------------------------------------------------------------ fed by a caller
+    def open_fed(self) -> None:
+        """Ready the run to be handed batches (:meth:`feed`) by a caller that reads the
+        source itself (a keyed run hands each key's records to that key's run). The
+        schema must be known (given, or restored from a checkpoint)."""
+        if self.task is None:
+            raise ConfigError("a run fed by a caller needs its schema up front")
+        self.started = self.clock()
+        if self.checkpoint is not None:
+            self.checkpoint.last_at = self.started
+        self.source = _Fed()
+        self._pending = []
+        self._first_unread = None
+
+    def feed(self, batch: RawBatch) -> None:
+        """Score then learn the records of ``batch`` (fed mode)."""
+        self._consume(batch)
+        self._after_batch(batch)
+
+    def finish_fed(self) -> dict:
+        """End a fed run: last snapshot, checkpoint, model and summary; returns the
+        summary."""
+        self.finished = self.clock()
+        try:
+            failures = self._conclude()
+        finally:
+            self._close()
+        return self._report(failures)
+
+    def close_fed(self) -> None:
+        """Close a fed run's outputs without concluding it (it is taken up again later
+        from its checkpoint)."""
+        self._close()
 
     @staticmethod
     def _attempt(what: str, path: str, write) -> list[str]:
@@ -485,6 +537,13 @@ class LearnRun:
     def summary(self) -> dict:
         """The run's summary (the contract other tools rely on, plus details)."""
         return run_summary(self)
+
+
+class _Fed:
+    """The source of a fed run: batches come from the caller."""
+
+    def close(self) -> None:
+        pass
 
 
 def run_learn(job: LearnJob, **kwargs) -> dict:

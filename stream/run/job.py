@@ -52,7 +52,9 @@ class LearnJob:
     without it a class target's rarest class among the first 1,000 labels. ``alerts_path``
     (a file, mqtt://, redis:// or http(s):// URL) receives an alert when the rules
     predicting it change, checked every ``alert_every`` records; a threshold move alerts
-    beyond ``alert_move`` of the field's range (see :mod:`stream.run.alerts`). Memory: ``category_cap`` distinct values of each category field are kept apart,
+    beyond ``alert_move`` of the field's range (see :mod:`stream.run.alerts`). ``by``
+    names a field whose every value gets a tree of its own (a keyed run, see
+    :mod:`stream.run.keyed`), at most ``keys_in_memory`` of them held in memory. Memory: ``category_cap`` distinct values of each category field are kept apart,
     later new values share one code; ``class_cap`` classes at most, a record with one
     more goes to the quarantine (see :class:`stream.run.encoding.Encoder`).
     """
@@ -98,6 +100,8 @@ class LearnJob:
     alerts_path: str | None = None
     alert_every: int = 10_000
     alert_move: float = 0.1
+    by: str | None = None
+    keys_in_memory: int = 1000
 
     def __post_init__(self) -> None:
         require_int("checkpoint interval", self.checkpoint_every, 0)
@@ -132,6 +136,7 @@ class LearnJob:
         require_int("alert interval", self.alert_every, 1)
         require_float("alert threshold move", self.alert_move, 0.0, 1.0, low_open=False)
         require_int("window", self.window, 1)
+        require_int("keys in memory", self.keys_in_memory, 1)
         if (self.snapshot_every or self.snapshot_seconds) and not self.snapshot_dir:
             raise ConfigError("a snapshot interval needs a snapshot directory")
 

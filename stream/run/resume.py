@@ -65,6 +65,9 @@ class RunCheckpoint:
         self.warn = warn
         self.path = job.checkpoint_path
         folder = os.path.dirname(os.path.abspath(self.path))
+        if os.path.isdir(self.path):
+            raise ConfigError(f"checkpoint {self.path!r} is a folder; a run keeps its "
+                              f"checkpoint in a file (a folder is for --by)")
         if not os.path.isdir(folder):
             raise ConfigError(f"cannot keep checkpoint {self.path!r}: "
                               f"directory {folder!r} does not exist")

@@ -1,0 +1,676 @@
+"""A keyed run: one tree per value of a field (a line, a site, an asset family), learned
+from one stream in one process.
+
+:class:`KeyedRun` reads the job's sources once, infers one schema from the first
+``INFER_ROWS`` records (the key field is left out of the features), splits every batch
+by the key's value and hands each key's records, in record order, to that key's own
+:class:`~stream.run.engine.LearnRun` (fed mode). Each key's run is exactly the run a
+single-tree ``sapwood learn`` would make of that key's records with the same schema: its
+outputs are the job's outputs with a folder per key inserted (``rules/`` becomes
+``rules/<key>/``, ``out/metrics.jsonl`` becomes ``out/<key>/metrics.jsonl``), and every
+folder that holds key folders gets ``keys.json`` (the index of keys) and ``schema.json``.
+
+Records wait in a key's buffer until it holds ``FLUSH_RECORDS`` (or all buffers together
+``BUFFERED_RECORDS``, a checkpoint is due, or a live feed falls quiet), so a key's tree is
+called with many records at once; results do not depend on this (nor on batch size).
+At most ``job.keys_in_memory`` keys are held in memory: the least recently seen key is
+written to a state file (the single run's checkpoint format) and reloaded when its key
+returns. Without ``--checkpoint`` those files live in a temporary folder.
+
+Checkpoint (``job.checkpoint_path`` names a folder): every key's state file
+(``<key>/state-<n>.ckpt``, numbered so a newer state never overwrites the one the last
+checkpoint names) and ``keyed-checkpoint.json``: the source position, the counters and,
+per key, which state file belongs to it. That file is written atomically after the state
+files, and only then is the source told to commit; a rerun of the same command resumes
+from it (state files and outputs written after it are cut back), so a killed keyed run
+ends like an uninterrupted one.
+
+Not supported with a key (refused with a message): delayed labels, alerts, predictions to
+standard output or to a broker.
+"""
+
+from __future__ import annotations
+
+import collections
+import dataclasses
+import hashlib
+import json
+import os
+import re
+import shutil
+import signal
+import sys
+import tempfile
+import threading
+import time
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from connectors.base import RawBatch, Reject
+from connectors.follow import FollowControl, FollowStopped
+from stream.errors import ConfigError, ModelFileError, OutputError
+
+from .atomic import write_atomic
+from .checkpoint import (
+    check_fingerprint,
+    fsync_length,
+    iso_now,
+    job_fingerprint,
+    json_ready,
+    rollback_snapshots,
+    truncate_for_resume,
+)
+from .engine import LearnRun
+from .job import LearnJob
+from .outputs import DEFAULT_QUARANTINE, QuarantineFile, json_default
+from .reading import held_enough, infer_run_schema, open_run_source
+from .schema import Schema, load_schema, not_a_field
+from .tasks import warm_up
+from .values import missing_mask
+
+FLUSH_RECORDS = 4096
+"""A key's buffered records are learned once it holds this many."""
+BUFFERED_RECORDS = 1 << 20
+"""All keys' buffered records together: beyond this every buffer is learned."""
+INDEX_NAME = "keys.json"
+SCHEMA_NAME = "schema.json"
+MANIFEST_NAME = "keyed-checkpoint.json"
+MANIFEST_VERSION = 1
+_RESERVED = {INDEX_NAME, SCHEMA_NAME, MANIFEST_NAME, "index.json", "", ".", ".."}
+
+
+def key_folder(key: str) -> str:
+    """The folder name of ``key``: the key itself when it is a plain name (letters,
+    digits, ``.``, ``_``, ``-``; at most 64 characters), else a cleaned form with a short
+    hash of the key, so two keys never share a folder."""
+    plain = re.sub(r"[^A-Za-z0-9._-]", "_", key)[:48].strip(".")
+    if plain == key and len(key) <= 64 and key not in _RESERVED:
+        return key
+    digest = hashlib.sha1(key.encode("utf-8", "surrogatepass")).hexdigest()[:10]
+    return f"{plain or 'key'}-{digest}"
+
+
+def keyed_path(path: str | None, folder: str, directory: bool = False) -> str | None:
+    """``path`` of one key: a directory gets the key folder inside, a file the key folder
+    before its name."""
+    if path is None:
+        return None
+    if directory:
+        return os.path.join(path, folder)
+    head, name = os.path.split(path)
+    return os.path.join(head, folder, name)
+
+
+def key_text(values: pd.Series) -> pd.Series:
+    """Key values as text: what the file holds; whole floats (JSON numbers) without
+    their ``.0``."""
+    if values.dtype.kind == "f":
+        whole = np.isfinite(values) & (values == np.round(values))
+        text = values.astype(str)
+        return text.where(~whole, values.round().astype("int64", errors="ignore").astype(str))
+    return values.astype(str)
+
+
+def check_keyed_job(job: LearnJob) -> None:
+    """What a keyed run cannot do, refused before anything is read."""
+    field = job.by
+    if not field or field == job.target:
+        raise ConfigError(f"--by must name a field other than the target, got {field!r}")
+    if job.labels:
+        raise ConfigError("--by does not work with --labels yet (labels that come later "
+                          "are joined per run, not per key)")
+    if job.alerts_path:
+        raise ConfigError("--by does not work with --alerts yet (alerts follow one tree)")
+    spec = job.predictions_path
+    if spec is not None and (spec == "-" or "://" in spec):
+        raise ConfigError("with --by, --predictions must be a file (a folder per key "
+                          f"holds each key's predictions), got {spec!r}")
+    if job.checkpoint_path and os.path.isfile(job.checkpoint_path):
+        raise ConfigError(f"with --by, --checkpoint names a folder (a state file per key), "
+                          f"but {job.checkpoint_path!r} is a file")
+    kind = job.declared.get(field)
+    if kind not in (None, "ignore"):
+        raise ConfigError(f"the key field {field!r} is declared {kind!r}; a key field "
+                          "is not a feature of the trees")
+
+
+@dataclasses.dataclass
+class KeyState:
+    """One key: its folder, its run while in memory, the records waiting for it, and the
+    state files written for it (``gen``: the newest, ``saved_gen``: the one the last
+    checkpoint names; 0 for none)."""
+
+    key: str
+    folder: str
+    run: LearnRun | None = None
+    pieces: list = dataclasses.field(default_factory=list)
+    buffered: int = 0
+    gen: int = 0
+    saved_gen: int = 0
+    dirty: bool = False
+    summary: dict | None = None
+
+
+class KeyedRun:
+    """A run that learns one tree per value of ``job.by``; :meth:`run` returns the
+    summary (per-key summaries go to each key's folder)."""
+
+    def __init__(self, job: LearnJob, clock: Callable[[], float] = time.perf_counter,
+                 wall: Callable[[], float] = time.time,
+                 progress: Callable[[dict], None] | None = None,
+                 warn: Callable[[str], None] | None = None) -> None:
+        check_keyed_job(job)
+        self.job = job
+        self.clock, self.wall, self.progress = clock, wall, progress
+        self.warn = warn or (lambda text: print(f"sapwood: warning: {text}",
+                                                file=sys.stderr, flush=True))
+        self.keys: dict[str, KeyState] = {}
+        self.loaded: collections.OrderedDict[str, KeyState] = collections.OrderedDict()
+        self.buffered = 0
+        self.records = 0
+        self.position: dict | None = None
+        self.schema: Schema | None = None
+        self.evictions = self.reloads = self.checkpoints = 0
+        self.prior_seconds = 0.0
+        self.resumes = 0
+        self.stop = threading.Event()
+        self.stopped: str | None = None
+        self.source = None
+        self.quarantine = QuarantineFile(job.quarantine_path or DEFAULT_QUARANTINE)
+        self.durable = job.checkpoint_path is not None
+        if self.durable:
+            self.state_dir = job.checkpoint_path
+            os.makedirs(self.state_dir, exist_ok=True)
+        else:
+            self.state_dir = tempfile.mkdtemp(prefix="sapwood-keys-")
+        self.manifest = self._read_manifest() if self.durable else None
+        if self.manifest is not None:
+            self._restore(self.manifest)
+        elif job.schema_path:
+            self.schema = _without_key(load_schema(job.schema_path), job.by)
+        if self.durable and self.manifest is None:
+            _clear_states(self.state_dir)     # of an attempt that never checkpointed
+            if os.path.exists(self.quarantine.path):
+                os.truncate(self.quarantine.path, 0)   # as a fresh checkpointed single run
+
+    # ------------------------------------------------------------------ the run
+    def run(self) -> dict:
+        """Learn the stream to its end (or until stopped); returns the summary."""
+        job = self.job
+        warm = self.clock()
+        warm_up()
+        self.startup_seconds = self.clock() - warm
+        self.started = self.last_checkpoint_at = self.clock()
+        follow = FollowControl(job.poll_seconds, job.idle_exit, self.stop,
+                               on_idle=self._on_quiet) if job.follow else None
+        self.source = open_run_source(job, follow, self.position)
+        live = job.follow or hasattr(self.source, "on_quiet")
+        if hasattr(self.source, "on_quiet"):
+            self.source.on_quiet = self._on_quiet
+        handlers = self._catch_signals() if self.durable or job.follow else {}
+        pending: list[RawBatch] = []
+        try:
+            try:
+                for batch in self.source.batches():
+                    if self.schema is None:
+                        pending.append(batch)
+                        if held_enough(pending):
+                            self._start(pending)
+                            pending = []
+                    else:
+                        self._dispatch(batch, live)
+                    if self.stop.is_set():
+                        break
+            except FollowStopped as exc:
+                self.stopped = self.stopped or exc.reason
+            if pending:
+                self._start(pending)
+            self.finished = self.clock()
+            self._flush_all()
+            summaries = self._finish_keys()
+            if self.durable and self.schema is not None:
+                self._checkpoint(final=True)
+        finally:
+            for signum, handler in handlers.items():
+                signal.signal(signum, handler)
+            self.source.close()
+            self.quarantine.close()
+            for state in list(self.loaded.values()):
+                state.run.close_fed()
+            if not self.durable:
+                shutil.rmtree(self.state_dir, ignore_errors=True)
+        self._write_indexes(summaries)
+        summary = self.summary(summaries)
+        if job.summary_path:
+            write_atomic(job.summary_path, json.dumps(summary, indent=2,
+                                                      default=json_default) + "\n")
+        failures = [f"key {s['key']!r}: {f}" for s in summaries for f in s.get("failures", [])]
+        if failures:
+            raise OutputError("; ".join(failures), summary)
+        return summary
+
+    def _start(self, pending: list[RawBatch]) -> None:
+        """The schema from the first records (the key field left out), then those
+        records learned."""
+        declared = {**self.job.declared, self.job.by: "ignore"}
+        job = dataclasses.replace(self.job, declared=declared)
+        columns = {c for b in pending for c in b.frame.columns}
+        if self.job.by not in columns and any(len(b.frame) for b in pending):
+            raise ConfigError(not_a_field("key field (--by)", self.job.by,
+                                          sorted(map(str, columns))))
+        self.schema = _without_key(infer_run_schema(pending, job, False), self.job.by)
+        for batch in pending:
+            self._dispatch(batch, False)
+
+    # ------------------------------------------------------------------ splitting
+    def _dispatch(self, batch: RawBatch, live: bool) -> None:
+        """Split ``batch`` by key into the keys' buffers; records without a key go to
+        the quarantine."""
+        by = self.job.by
+        frame, lines = batch.frame, batch.lines
+        rejects = list(batch.rejects)
+        if len(frame):
+            values = frame[by] if by in frame.columns else pd.Series(
+                [None] * len(frame), index=frame.index, dtype=object)
+            absent = missing_mask(values)
+            if absent.any():
+                rejects += [Reject(batch.origin, int(line), by, None,
+                                   "has no value for the key field (--by)")
+                            for line in lines[absent]]
+                keep = ~absent
+                frame, lines, values = frame[keep], lines[keep], values[keep]
+            self._split(frame, lines, values, batch)
+        if rejects:
+            if self.job.strict:
+                from stream.errors import RecordError
+
+                first = min(rejects, key=lambda r: (r.line, r.field or ""))
+                raise RecordError(first.message() + " (strict mode stops here)")
+            before = self.quarantine.count
+            self.quarantine.write(sorted(rejects, key=lambda r: (r.line, r.field or "")))
+            self.records += self.quarantine.count - before
+        if batch.position is not None:
+            self.position = batch.position
+        if live or self.buffered >= BUFFERED_RECORDS:
+            self._flush_all()
+        if self.durable and self._checkpoint_due():
+            self._checkpoint()
+        if self.progress is not None:
+            elapsed = max(self.clock() - self.started, 1e-9)
+            self.progress({"records": self.records, "quarantined": self.quarantine.count,
+                           "seconds": elapsed, "rate": self.records / elapsed,
+                           "keys": len(self.keys)})
+
+    def _split(self, frame: pd.DataFrame, lines: np.ndarray, values: pd.Series,
+               batch: RawBatch) -> None:
+        if not len(frame):
+            return
+        codes, uniques = pd.factorize(key_text(values), sort=False)
+        order = np.argsort(codes, kind="stable")
+        counts = np.bincount(codes, minlength=len(uniques))
+        ordered = frame.take(order).reset_index(drop=True)
+        ordered_lines = lines[order]
+        start = 0
+        for code, count in enumerate(counts.tolist()):
+            key = uniques[code]
+            state = self.keys.get(key)
+            if state is None:
+                state = self.keys[key] = KeyState(key, key_folder(key))
+            elif key in self.loaded:
+                self.loaded.move_to_end(key)       # least recently seen is evicted first
+            part = slice(start, start + count)
+            state.pieces.append((batch.origin, ordered.iloc[part], ordered_lines[part],
+                                 batch.keyed))
+            state.buffered += count
+            self.buffered += count
+            self.records += count
+            start += count
+            if state.buffered >= FLUSH_RECORDS:
+                self._flush(state)
+
+    # ------------------------------------------------------------------ learning
+    def _flush(self, state: KeyState) -> None:
+        """Learn the records waiting for ``state``'s key, in their order."""
+        if not state.pieces:
+            return
+        run = self._load(state)
+        pieces, state.pieces = state.pieces, []
+        self.buffered -= state.buffered
+        state.buffered = 0
+        i = 0
+        while i < len(pieces):        # consecutive pieces of one origin are one batch
+            j = i + 1
+            while j < len(pieces) and pieces[j][0] == pieces[i][0]:
+                j += 1
+            group = pieces[i:j]
+            frame = group[0][1] if len(group) == 1 else pd.concat(
+                [p[1] for p in group], ignore_index=True)
+            lines = np.concatenate([p[2] for p in group])
+            run.feed(RawBatch(frame, group[0][0], lines, keyed=any(p[3] for p in group)))
+            i = j
+        state.dirty = True
+
+    def _flush_all(self) -> None:
+        for state in list(self.keys.values()):
+            if state.pieces:
+                self._flush(state)
+
+    def _load(self, state: KeyState) -> LearnRun:
+        """``state``'s run, loaded from its state file (or new) if not in memory."""
+        if state.run is not None:
+            self.loaded.move_to_end(state.key)
+            return state.run
+        while len(self.loaded) >= self.job.keys_in_memory:
+            self._evict(next(iter(self.loaded.values())))
+        job = self._key_job(state)
+        fresh = state.gen == 0
+        for directory in (job.snapshot_dir, _parent(job.metrics_path),
+                          _parent(job.events_path), _parent(job.predictions_path),
+                          _parent(job.save_path), _parent(job.summary_path)):
+            if directory:
+                os.makedirs(directory, exist_ok=True)
+        if fresh and self.resumes and job.snapshot_dir:
+            rollback_snapshots(job.snapshot_dir, 0)   # a key begun after the checkpoint
+        run = LearnRun(job, clock=self.clock, wall=self.wall, warn=self.warn,
+                       schema=self.schema)
+        run.open_fed()
+        self.reloads += not fresh
+        state.run = run
+        self.loaded[state.key] = state
+        return run
+
+    def _key_job(self, state: KeyState) -> LearnJob:
+        job, folder = self.job, state.folder
+        return dataclasses.replace(
+            job, by=None, schema_path=None, declared={}, fmt=None,
+            header=None, summary_path=keyed_path(job.summary_path, folder),
+            save_path=keyed_path(job.save_path, folder),
+            snapshot_dir=keyed_path(job.snapshot_dir, folder, directory=True),
+            metrics_path=keyed_path(job.metrics_path, folder),
+            events_path=keyed_path(job.events_path, folder),
+            predictions_path=keyed_path(job.predictions_path, folder),
+            quarantine_path=self._key_quarantine(folder),
+            checkpoint_path=self._state_path(state, state.gen),
+            checkpoint_every=0, checkpoint_seconds=0.0, follow=False, idle_exit=None)
+
+    def _key_quarantine(self, folder: str) -> str:
+        """Where a key's own rejects go (records its encoder refuses): beside the
+        quarantine named, else in the key's folder of the first output folder."""
+        homes = self._homes()
+        if self.job.quarantine_path or not homes:
+            return keyed_path(self.job.quarantine_path or DEFAULT_QUARANTINE, folder)
+        return os.path.join(homes[0], folder, DEFAULT_QUARANTINE)
+
+    def _state_path(self, state: KeyState, gen: int) -> str:
+        folder = os.path.join(self.state_dir, state.folder)
+        os.makedirs(folder, exist_ok=True)
+        return os.path.join(folder, f"state-{gen}.ckpt")
+
+    def _save_state(self, state: KeyState) -> None:
+        """Write ``state``'s run to a new state file; the one before it goes unless the
+        last checkpoint names it."""
+        run = state.run
+        previous = state.gen
+        state.gen += 1
+        run.checkpoint.path = self._state_path(state, state.gen)
+        run.checkpoint.write(run)
+        state.dirty = False
+        if previous and previous != state.saved_gen:
+            _remove(self._state_path(state, previous))
+
+    def _evict(self, state: KeyState) -> None:
+        """Save ``state``'s key and drop it from memory."""
+        if state.pieces:
+            self._flush(state)
+        if state.dirty or state.gen == 0:
+            self._save_state(state)
+        state.run.close_fed()
+        state.run = None
+        del self.loaded[state.key]
+        self.evictions += 1
+
+    def _finish_keys(self) -> list[dict]:
+        """Every key's run concluded (last snapshot, model, summary), one at a time."""
+        if self.schema is None:
+            return []
+        summaries = []
+        for state in self.keys.values():
+            run = self._load(state)
+            run.stopped = self.stopped
+            if self.durable:
+                previous = state.gen
+                state.gen += 1
+                run.checkpoint.path = self._state_path(state, state.gen)
+                if previous and previous != state.saved_gen:
+                    _remove(self._state_path(state, previous))
+            else:
+                run.checkpoint = None
+            try:
+                summary = run.finish_fed()
+            except OutputError as exc:
+                summary = exc.summary or {"failures": [str(exc)]}
+            state.run = None
+            del self.loaded[state.key]
+            state.dirty = False
+            summary = {"key": state.key, "folder": state.folder, **summary}
+            state.summary = summary
+            summaries.append(summary)
+        return summaries
+
+    # ------------------------------------------------------------------ checkpoints
+    def _checkpoint_due(self) -> bool:
+        job = self.job
+        every, seconds = job.checkpoint_every, job.checkpoint_seconds
+        since = self.records - getattr(self, "_checkpointed_records", 0)
+        limit = getattr(self.source, "max_uncommitted", None)
+        return bool((every and since >= every) or
+                    (seconds and self.clock() - self.last_checkpoint_at >= seconds) or
+                    (limit is not None and since >= limit))
+
+    def _checkpoint(self, final: bool = False) -> None:
+        """Every key's state, then the file that names them with the source position;
+        then the source may acknowledge."""
+        if not final:
+            self._flush_all()
+            for state in self.loaded.values():
+                if state.dirty or state.gen == 0:
+                    self._save_state(state)
+        manifest = {
+            "keyed_checkpoint_version": MANIFEST_VERSION,
+            "written_at": iso_now(self.wall()),
+            "job": job_fingerprint(self.job),
+            "schema": self.schema.to_dict(),
+            "source": json_ready(self.position),
+            "records": self.records,
+            "quarantine": {"count": self.quarantine.count,
+                           "bytes": _flushed_length(self.quarantine)},
+            "seconds": self.prior_seconds + (self.clock() - self.started),
+            "resumes": self.resumes, "evictions": self.evictions,
+            "keys": {s.key: {"folder": s.folder, "state": s.gen}
+                     for s in self.keys.values()},
+        }
+        write_atomic(os.path.join(self.state_dir, MANIFEST_NAME),
+                     json.dumps(manifest, indent=1) + "\n")
+        for state in self.keys.values():
+            if state.saved_gen and state.saved_gen != state.gen:
+                _remove(self._state_path(state, state.saved_gen))
+            state.saved_gen = state.gen
+        self.checkpoints += 1
+        self._checkpointed_records = self.records
+        self.last_checkpoint_at = self.clock()
+        if self.position is not None and hasattr(self.source, "commit"):
+            self.source.commit(self.position)
+
+    def _read_manifest(self) -> dict | None:
+        path = os.path.join(self.state_dir, MANIFEST_NAME)
+        if not os.path.exists(path):
+            return None
+        try:
+            with open(path, encoding="utf-8") as handle:
+                manifest = json.load(handle)
+            if manifest["keyed_checkpoint_version"] != MANIFEST_VERSION:
+                raise ValueError(f"version {manifest['keyed_checkpoint_version']!r}")
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise ModelFileError(f"keyed checkpoint {path!r} is not usable: {exc}") from exc
+        check_fingerprint(manifest["job"], job_fingerprint(self.job), path)
+        return manifest
+
+    def _restore(self, manifest: dict) -> None:
+        """Take up the keyed checkpoint: keys and their state files (newer ones
+        removed), counters, the quarantine cut back, the source position."""
+        self.schema = Schema.from_dict(manifest["schema"])
+        self.records = int(manifest["records"])
+        self._checkpointed_records = self.records
+        self.position = manifest["source"]
+        self.prior_seconds = float(manifest["seconds"])
+        self.resumes = int(manifest["resumes"]) + 1
+        self.evictions = int(manifest.get("evictions", 0))
+        quarantine = manifest["quarantine"]
+        self.quarantine.count = int(quarantine["count"])
+        truncate_for_resume(self.quarantine.path, quarantine["bytes"], "quarantine file")
+        named = {}
+        for key, entry in manifest["keys"].items():
+            state = KeyState(str(key), str(entry["folder"]), gen=int(entry["state"]),
+                             saved_gen=int(entry["state"]))
+            self.keys[state.key] = state
+            named[state.folder] = f"state-{state.gen}.ckpt"
+        for entry in os.scandir(self.state_dir):
+            if entry.is_dir():
+                for item in os.scandir(entry.path):
+                    if item.name != named.get(entry.name):
+                        _remove(item.path)
+
+    # ------------------------------------------------------------------ live feeds, signals
+    def _on_quiet(self) -> None:
+        """A live feed waited and nothing came: learn what waits, checkpoint if due."""
+        if self.schema is not None:
+            self._flush_all()
+            if self.durable and self.job.checkpoint_seconds and \
+                    self.clock() - self.last_checkpoint_at >= self.job.checkpoint_seconds:
+                self._checkpoint()
+        if self.stop.is_set():
+            raise FollowStopped("stop")
+
+    def _catch_signals(self) -> dict:
+        if threading.current_thread() is not threading.main_thread():
+            return {}
+        previous = {}
+        for signum in (signal.SIGINT, signal.SIGTERM):
+            previous[signum] = signal.signal(signum, self._on_signal)
+        return previous
+
+    def _on_signal(self, signum, frame) -> None:
+        if self.stop.is_set():
+            raise KeyboardInterrupt
+        self.stopped = signal.Signals(signum).name
+        self.stop.set()
+
+    # ------------------------------------------------------------------ results
+    def _homes(self) -> list[str]:
+        """The folders that hold key folders."""
+        job = self.job
+        homes = [job.snapshot_dir] + [_parent(p) or "." for p in (
+            job.summary_path, job.save_path, job.metrics_path, job.events_path,
+            job.predictions_path) if p]
+        seen: list[str] = []
+        for home in homes:
+            if home and os.path.abspath(home) not in map(os.path.abspath, seen):
+                seen.append(home)
+        return seen
+
+    def _write_indexes(self, summaries: list[dict]) -> None:
+        if self.schema is None:
+            return
+        index = {"by": self.job.by, "target": self.job.target, "task": self.schema.task,
+                 "keys": [_index_entry(s) for s in summaries]}
+        for home in self._homes():
+            os.makedirs(home, exist_ok=True)
+            write_atomic(os.path.join(home, INDEX_NAME),
+                         json.dumps(index, indent=1, default=json_default) + "\n")
+            write_atomic(os.path.join(home, SCHEMA_NAME),
+                         json.dumps(self.schema.to_dict(), indent=2) + "\n")
+
+    def summary(self, summaries: list[dict]) -> dict:
+        """The keyed run's summary: counts over all keys, pooled scores, where the
+        index is."""
+        learned = sum(s.get("learned", 0) for s in summaries)
+        seconds = self.prior_seconds + max(self.finished - self.started, 0.0)
+        out = {
+            "by": self.job.by, "keys": len(self.keys), "records": self.records,
+            "learned": learned,
+            "quarantined": self.quarantine.count + sum(s.get("quarantined", 0)
+                                                       for s in summaries),
+            "task": self.schema.task if self.schema else None, "target": self.job.target,
+            "seconds": round(seconds, 6),
+            "records_per_second": round(self.records / seconds, 1) if seconds > 0 else None,
+            "startup_seconds": round(self.startup_seconds, 6),
+            "keys_in_memory": self.job.keys_in_memory, "evictions": self.evictions,
+            "reloads": self.reloads, "resumes": self.resumes,
+            "index": [os.path.join(h, INDEX_NAME) for h in self._homes()],
+            "quarantine": self.quarantine.path,
+        }
+        out.update(_pooled(summaries, self.schema.task if self.schema else None))
+        if self.durable:
+            out["checkpoint"] = {"path": self.job.checkpoint_path,
+                                 "written": self.checkpoints}
+        if self.stopped:
+            out["stopped"] = self.stopped
+        return out
+
+
+def _pooled(summaries: list[dict], task: str | None) -> dict:
+    """Scores over all keys' records: accuracy, or MAE and RMSE, weighted by records
+    learned."""
+    learned = [(s, s.get("learned", 0)) for s in summaries if s.get("learned")]
+    total = sum(n for _, n in learned)
+    if not total:
+        return {}
+    if task == "regression":
+        mae = sum((s.get("mae") or 0.0) * n for s, n in learned) / total
+        mse = sum((s.get("rmse") or 0.0) ** 2 * n for s, n in learned) / total
+        return {"mae": mae, "rmse": mse ** 0.5}
+    return {"accuracy": sum((s.get("accuracy") or 0.0) * n for s, n in learned) / total}
+
+
+def _index_entry(summary: dict) -> dict:
+    names = ("key", "folder", "records", "learned", "quarantined", "accuracy", "kappa",
+             "mae", "rmse", "r2", "concern", "concern_recall", "leaves", "depth", "swaps",
+             "drift_alarms")
+    return {n: summary[n] for n in names if n in summary}
+
+
+def _without_key(schema: Schema, field: str) -> Schema:
+    """``schema`` with the key field ignored (a key is not a feature of its tree)."""
+    data = schema.to_dict()
+    for entry in data.get("fields", []):
+        if entry.get("name") == field and entry.get("kind") != "ignore":
+            entry["kind"] = "ignore"
+    return Schema.from_dict(data)
+
+
+def _parent(path: str | None) -> str | None:
+    if path is None:
+        return None
+    return os.path.dirname(path) or None
+
+
+def _flushed_length(quarantine: QuarantineFile) -> int | None:
+    """The quarantine's length (its writer flushes after every batch), or None."""
+    return fsync_length(quarantine.path) if os.path.exists(quarantine.path) else None
+
+
+def _clear_states(directory: str) -> None:
+    """Remove the key folders of state files in ``directory``."""
+    for entry in os.scandir(directory):
+        if entry.is_dir() and all(item.name.startswith("state-")
+                                  for item in os.scandir(entry.path)):
+            shutil.rmtree(entry.path)
+
+
+def _remove(path: str) -> None:
+    try:
+        os.unlink(path)
+    except FileNotFoundError:
+        pass
