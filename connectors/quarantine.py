@@ -8,7 +8,6 @@ JSON Lines tool and the bad records found again in their source.
 from __future__ import annotations
 
 import json
-import os
 from typing import Iterable
 
 from stream.errors import ConfigError
@@ -38,9 +37,6 @@ class QuarantineWriter:
         self._out = None
         if path is not None:
             try:
-                folder = os.path.dirname(path)
-                if folder:
-                    os.makedirs(folder, exist_ok=True)
                 self._out = open(path, "a", encoding="utf-8")
             except OSError as exc:
                 reason = exc.strerror or str(exc)

@@ -14,6 +14,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from stream.jit import njit
+
 MAX_DECIMALS = 6
 """Most decimals told apart; values with more count as :data:`FINE`."""
 
@@ -37,12 +39,31 @@ def decimals_of(values: np.ndarray) -> int:
     ``d <= MAX_DECIMALS`` with every value a whole multiple of 10^-d (within
     :func:`slack`), else :data:`FINE`; 0 when no value is finite."""
     values = np.asarray(values, dtype=np.float64)
-    if values.size > SAMPLE:
-        values = values[:: values.size // SAMPLE]
-    values = values[np.isfinite(values)]
-    if values.size == 0:
+    step = values.size // SAMPLE if values.size > SAMPLE else 1
+    return int(_least_decimals(values, step, _SCALES))
+
+
+@njit(borrows=True)
+def _least_decimals(values, step, scales):   # pragma: no cover - compiled
+    """:func:`decimals_of` over ``values[::step]``, in one pass per candidate ``d`` that
+    stops at the first value that does not fit (no temporary arrays)."""
+    finite = False
+    for i in range(0, values.size, step):
+        if np.isfinite(values[i]):
+            finite = True
+            break
+    if not finite:
         return 0
-    scaled = np.abs(values)[:, None] * _SCALES[None, :]
-    whole = np.abs(scaled - np.rint(scaled)) <= slack(scaled)
-    fits = np.flatnonzero(whole.all(axis=0))
-    return int(fits[0]) if fits.size else FINE
+    for d in range(MAX_DECIMALS + 1):
+        fits = True
+        for i in range(0, values.size, step):
+            v = values[i]
+            if not np.isfinite(v):
+                continue
+            scaled = abs(v) * scales[d]
+            if abs(scaled - np.rint(scaled)) > 1e-6 + 1e-12 * abs(scaled):
+                fits = False
+                break
+        if fits:
+            return d
+    return FINE

@@ -11,7 +11,7 @@ from stream.errors import SapwoodError
 
 from .common import SUITES, Bench, SuiteResult
 # the suites register themselves when imported, in the order ``--suite all`` runs them
-from . import learners, end_to_end, feed_path, feeds, rules, false_changes  # noqa: F401
+from . import learners, end_to_end, feed_path, feeds, rules, false_changes, keyed  # noqa: F401
 from .output import environment, render_text, write_outputs
 from .streams import STREAMS
 

@@ -29,7 +29,9 @@ def _ratio(value: float) -> str:
     return f"{value:.2f}"
 
 
-def _write_csv(path, names: list[str], kinds: list[str], X: np.ndarray, target) -> None:
+def _write_csv(path, names: list[str], kinds: list[str], X: np.ndarray, target,
+               extra: dict | None = None) -> None:
+    """The records as CSV, label last; ``extra`` columns (name: values) before it."""
     import pandas as pd
 
     columns = {}
@@ -37,6 +39,7 @@ def _write_csv(path, names: list[str], kinds: list[str], X: np.ndarray, target) 
         column = X[:, j]
         columns[feature] = np.char.add("c", column.astype(np.int64).astype(str)) \
             if kind == "category" else column
+    columns.update(extra or {})
     columns["label"] = target
     pd.DataFrame(columns).to_csv(path, index=False, float_format="%.6f")
 

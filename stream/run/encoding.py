@@ -22,6 +22,7 @@ import pandas as pd
 from connectors.base import RawBatch, Reject
 from stream.checks import CATEGORY_LIMIT, VALUE_LIMIT, require_int
 from stream.errors import ConfigError, ModelFileError
+from stream.jit import njit
 
 from stream.resolution import FINE, decimals_of
 from .schema import Schema
@@ -190,6 +191,86 @@ class PreparedColumns:
     unknown_present: dict[str, int]   # values present per field outside the schema
     decimals: dict[str, int]          # per numeric feature, the decimals its values carry
     ranges: dict[str, tuple[float, float]]   # per numeric feature, its least and most value
+    unknown_masks: dict[str, np.ndarray] | None = None   # where those values are (take)
+
+
+    def take(self, rows: np.ndarray | slice, batch: RawBatch,
+             settled: dict[str, int] | None = None) -> "PreparedColumns":
+        """The columns of the records at ``rows`` (in that order), as :func:`prepare_columns`
+        gives them for ``batch`` holding just those records: labels numbered anew in the
+        order they first appear, decimals and ranges of these values (``settled``: the
+        decimals an encoder holds; a field already finer than any count is not
+        sampled again, as the most decimals seen is what is kept). A keyed run reads a
+        window of records once and hands each key its part."""
+        def part(values):
+            return None if values is None else values[rows]
+
+        problems = []
+        for mask, field, reason, raw in self.problems:
+            mine = mask[rows]
+            if mine.any():
+                problems.append((mine, field, reason, None if raw is None
+                                 else as_array(raw)[rows]))
+        X = self.X[rows]
+        decimals: dict[str, int] = {}
+        ranges: dict[str, tuple[float, float]] = {}
+        if not self.scoring and X.shape[0]:
+            with np.errstate(invalid="ignore"):
+                least, most = np.fmin.reduce(X, axis=0), np.fmax.reduce(X, axis=0)
+            for j, (name, kind) in enumerate(zip(self.schema.feature_names,
+                                                 self.schema.feature_kinds)):
+                if kind == "numeric":
+                    decimals[name] = FINE if settled and settled.get(name) == FINE \
+                        else decimals_of(X[:, j])
+                    lo, hi = float(least[j]), float(most[j])
+                    span = (lo, hi) if abs(lo) <= VALUE_LIMIT and abs(hi) <= VALUE_LIMIT \
+                        else _span(X[:, j])       # NaN only, infinite or huge: the slow way
+                    if span is not None:
+                        ranges[name] = span
+        target_codes, target_labels = (None, None) if self.target_codes is None else \
+            _renumbered(self.target_codes[rows], self.target_labels)
+        masks = self.unknown_masks
+        if masks is None:
+            masks = {name: ~missing_mask(self.batch.frame[name])
+                     for name in self.unknown_present}
+        masks = {name: mask[rows] for name, mask in masks.items()}
+        unknown = {name: int(np.count_nonzero(mask)) for name, mask in masks.items()}
+        return PreparedColumns(
+            batch, self.schema, self.scoring, X, self.lines[rows], problems,
+            self.bad_rows[rows],
+            [(j, name, *_renumbered(codes[rows], labels))
+             for j, name, codes, labels in self.pending],
+            None if self.raw_target is None else as_array(self.raw_target)[rows],
+            target_codes, target_labels, part(self.y_values), part(self.times),
+            part(self.ids), unknown, decimals, ranges, masks)
+
+
+def _renumbered(codes: np.ndarray, labels: list) -> tuple[np.ndarray, list]:
+    """Codes into ``labels`` numbered anew in the order they first appear in ``codes``
+    (-1 stays), with the labels they keep: :func:`factorize_labels` of just these rows."""
+    renumbered, present = _first_seen(np.ascontiguousarray(codes, dtype=np.int64),
+                                      len(labels))
+    return renumbered, [labels[c] for c in present.tolist()]
+
+
+@njit
+def _first_seen(codes, n_labels):   # pragma: no cover - compiled
+    """Codes renumbered in order of first appearance, and the old code of each new one."""
+    new = np.full(n_labels, -1, dtype=np.int64)
+    present = np.empty(n_labels, dtype=np.int64)
+    out = np.empty(codes.size, dtype=np.int64)
+    k = 0
+    for i in range(codes.size):
+        c = codes[i]
+        if c < 0:
+            out[i] = -1
+            continue
+        if new[c] < 0:
+            new[c] = k
+            present[k] = c
+            k += 1
+        out[i] = new[c]
+    return out, present[:k]
 
 
 def prepare_columns(schema: Schema, batch: RawBatch, scoring: bool = False) -> PreparedColumns:
@@ -331,8 +412,8 @@ class Encoder:
         :func:`prepare_columns` (on a reading thread) for this schema and ``scoring``;
         only the codes, which depend on what came before, are given here.
         """
-        if prepared is None or prepared.batch is not batch or prepared.schema is not \
-                self.schema or prepared.scoring != scoring:
+        if prepared is None or prepared.batch is not batch or prepared.scoring != scoring \
+                or (prepared.schema is not self.schema and prepared.schema != self.schema):
             prepared = prepare_columns(self.schema, batch, scoring)
         schema = self.schema
         X, lines, problems = prepared.X, prepared.lines, list(prepared.problems)

@@ -261,9 +261,10 @@ class LearnRun:
         self._pending = []
         self._first_unread = None
 
-    def feed(self, batch: RawBatch) -> None:
-        """Score then learn the records of ``batch`` (fed mode)."""
-        self._consume(batch)
+    def feed(self, batch: RawBatch, prepared: PreparedColumns | None = None) -> None:
+        """Score then learn the records of ``batch`` (fed mode); ``prepared``: its
+        columns already read."""
+        self._consume(batch, prepared)
         self._after_batch(batch)
 
     def finish_fed(self) -> dict:

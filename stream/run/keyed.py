@@ -10,15 +10,15 @@ outputs are the job's outputs with a folder per key inserted (``rules/`` becomes
 ``rules/<key>/``, ``out/metrics.jsonl`` becomes ``out/<key>/metrics.jsonl``), and every
 folder that holds key folders gets ``keys.json`` (the index of keys) and ``schema.json``.
 
-Records wait in a key's buffer until it holds ``FLUSH_RECORDS`` (or all buffers together
-``BUFFERED_RECORDS``, a checkpoint is due, or a live feed falls quiet), so a key's tree is
-called with many records at once; results do not depend on this (nor on batch size).
-At most ``job.keys_in_memory`` keys are held in memory: the least recently seen key is
-written to a state file (the single run's checkpoint format) and reloaded when its key
-returns. Without ``--checkpoint`` those files live in a temporary folder.
+Records are read into a window of up to ``WINDOW_RECORDS`` (a live feed: one batch), then
+split by key in one pass, so each key's tree is called with all its records of the window
+at once; results do not depend on the window (nor on batch size). At most
+``job.keys_in_memory`` keys are held in memory: the least recently seen key is written to
+a state file (the single run's checkpoint format) and reloaded when its key returns.
+Without ``--checkpoint`` those files live in a temporary folder.
 
 Checkpoint (``job.checkpoint_path`` names a folder): every key's state file
-(``<key>/state-<n>.ckpt``, numbered so a newer state never overwrites the one the last
+(``<key>.state-<n>.ckpt``, numbered so a newer state never overwrites the one the last
 checkpoint names) and ``keyed-checkpoint.json``: the source position, the counters and,
 per key, which state file belongs to it. That file is written atomically after the state
 files, and only then is the source told to commit; a rerun of the same command resumes
@@ -50,7 +50,7 @@ import pandas as pd
 
 from connectors.base import RawBatch, Reject
 from connectors.follow import FollowControl, FollowStopped
-from stream.errors import ConfigError, ModelFileError, OutputError
+from stream.errors import ConfigError, ModelFileError, OutputError, RecordError
 
 from .atomic import write_atomic
 from .checkpoint import (
@@ -62,18 +62,19 @@ from .checkpoint import (
     rollback_snapshots,
     truncate_for_resume,
 )
+from .encoding import prepare_columns
 from .engine import LearnRun
+from .resume import RunCheckpoint
 from .job import LearnJob
 from .outputs import DEFAULT_QUARANTINE, QuarantineFile, json_default
 from .reading import held_enough, infer_run_schema, open_run_source
 from .schema import Schema, load_schema, not_a_field
 from .tasks import warm_up
-from .values import missing_mask
+from .values import MISSING_MARKERS, missing_mask
 
-FLUSH_RECORDS = 4096
-"""A key's buffered records are learned once it holds this many."""
-BUFFERED_RECORDS = 1 << 20
-"""All keys' buffered records together: beyond this every buffer is learned."""
+WINDOW_RECORDS = 1 << 20
+"""Records read before they are split by key and learned (fewer at a checkpoint, at a
+change of source file, and for a live feed after every batch)."""
 INDEX_NAME = "keys.json"
 SCHEMA_NAME = "schema.json"
 MANIFEST_NAME = "keyed-checkpoint.json"
@@ -145,8 +146,6 @@ class KeyState:
     key: str
     folder: str
     run: LearnRun | None = None
-    pieces: list = dataclasses.field(default_factory=list)
-    buffered: int = 0
     gen: int = 0
     saved_gen: int = 0
     dirty: bool = False
@@ -168,7 +167,8 @@ class KeyedRun:
                                                 file=sys.stderr, flush=True))
         self.keys: dict[str, KeyState] = {}
         self.loaded: collections.OrderedDict[str, KeyState] = collections.OrderedDict()
-        self.buffered = 0
+        self.window: list[tuple[RawBatch, pd.DataFrame, np.ndarray]] = []
+        self.window_rows = 0
         self.records = 0
         self.position: dict | None = None
         self.schema: Schema | None = None
@@ -227,9 +227,9 @@ class KeyedRun:
                 self.stopped = self.stopped or exc.reason
             if pending:
                 self._start(pending)
-            self.finished = self.clock()
             self._flush_all()
             summaries = self._finish_keys()
+            self.finished = self.clock()
             if self.durable and self.schema is not None:
                 self._checkpoint(final=True)
         finally:
@@ -266,34 +266,37 @@ class KeyedRun:
 
     # ------------------------------------------------------------------ splitting
     def _dispatch(self, batch: RawBatch, live: bool) -> None:
-        """Split ``batch`` by key into the keys' buffers; records without a key go to
-        the quarantine."""
+        """Take ``batch`` into the window (records without a key go to the quarantine);
+        learn the window when it is full, a checkpoint is due, or the feed is live."""
         by = self.job.by
         frame, lines = batch.frame, batch.lines
         rejects = list(batch.rejects)
         if len(frame):
             values = frame[by] if by in frame.columns else pd.Series(
                 [None] * len(frame), index=frame.index, dtype=object)
-            absent = missing_mask(values)
+            absent = _absent(values)
             if absent.any():
                 rejects += [Reject(batch.origin, int(line), by, None,
                                    "has no value for the key field (--by)")
                             for line in lines[absent]]
                 keep = ~absent
-                frame, lines, values = frame[keep], lines[keep], values[keep]
-            self._split(frame, lines, values, batch)
+                frame, lines = frame[keep], lines[keep]
         if rejects:
             if self.job.strict:
-                from stream.errors import RecordError
-
                 first = min(rejects, key=lambda r: (r.line, r.field or ""))
                 raise RecordError(first.message() + " (strict mode stops here)")
             before = self.quarantine.count
             self.quarantine.write(sorted(rejects, key=lambda r: (r.line, r.field or "")))
             self.records += self.quarantine.count - before
+        if len(frame):
+            if self.window and self.window[0][0].origin != batch.origin:
+                self._flush_all()              # a window holds records of one origin
+            self.window.append((batch, frame, lines))
+            self.window_rows += len(frame)
+            self.records += len(frame)
         if batch.position is not None:
             self.position = batch.position
-        if live or self.buffered >= BUFFERED_RECORDS:
+        if live or self.window_rows >= WINDOW_RECORDS:
             self._flush_all()
         if self.durable and self._checkpoint_due():
             self._checkpoint()
@@ -303,59 +306,39 @@ class KeyedRun:
                            "seconds": elapsed, "rate": self.records / elapsed,
                            "keys": len(self.keys)})
 
-    def _split(self, frame: pd.DataFrame, lines: np.ndarray, values: pd.Series,
-               batch: RawBatch) -> None:
-        if not len(frame):
+    # ------------------------------------------------------------------ learning
+    def _flush_all(self) -> None:
+        """Split the window by key (one stable sort) and learn each key's records, in
+        their order, keys in the order they first appear in the window."""
+        if not self.window:
             return
-        codes, uniques = pd.factorize(key_text(values), sort=False)
+        window, self.window, self.window_rows = self.window, [], 0
+        first = window[0][0]
+        frame = window[0][1] if len(window) == 1 else pd.concat(
+            [w[1] for w in window], ignore_index=True)
+        lines = np.concatenate([w[2] for w in window])
+        keyed = any(w[0].keyed for w in window)
+        codes, uniques = pd.factorize(key_text(frame[self.job.by]), sort=False)
         order = np.argsort(codes, kind="stable")
-        counts = np.bincount(codes, minlength=len(uniques))
-        ordered = frame.take(order).reset_index(drop=True)
-        ordered_lines = lines[order]
-        start = 0
-        for code, count in enumerate(counts.tolist()):
-            key = uniques[code]
+        bounds = np.concatenate([[0], np.cumsum(np.bincount(codes, minlength=len(uniques)))])
+        whole = RawBatch(frame, first.origin, lines, keyed=keyed)
+        # the window's columns read once, then put in key order once, so that each key's
+        # records are one stretch of rows (no scattered reads per key)
+        prepared = prepare_columns(self.schema, whole)
+        # the key's records: their columns were read with the window's, so the batch
+        # handed on carries only their count (a frame without columns)
+        counted = pd.DataFrame(index=pd.RangeIndex(len(frame)))
+        ordered = prepared.take(order, RawBatch(counted, first.origin, lines[order]))
+        for code, key in enumerate(uniques.tolist()):
             state = self.keys.get(key)
             if state is None:
                 state = self.keys[key] = KeyState(key, key_folder(key))
-            elif key in self.loaded:
-                self.loaded.move_to_end(key)       # least recently seen is evicted first
-            part = slice(start, start + count)
-            state.pieces.append((batch.origin, ordered.iloc[part], ordered_lines[part],
-                                 batch.keyed))
-            state.buffered += count
-            self.buffered += count
-            self.records += count
-            start += count
-            if state.buffered >= FLUSH_RECORDS:
-                self._flush(state)
-
-    # ------------------------------------------------------------------ learning
-    def _flush(self, state: KeyState) -> None:
-        """Learn the records waiting for ``state``'s key, in their order."""
-        if not state.pieces:
-            return
-        run = self._load(state)
-        pieces, state.pieces = state.pieces, []
-        self.buffered -= state.buffered
-        state.buffered = 0
-        i = 0
-        while i < len(pieces):        # consecutive pieces of one origin are one batch
-            j = i + 1
-            while j < len(pieces) and pieces[j][0] == pieces[i][0]:
-                j += 1
-            group = pieces[i:j]
-            frame = group[0][1] if len(group) == 1 else pd.concat(
-                [p[1] for p in group], ignore_index=True)
-            lines = np.concatenate([p[2] for p in group])
-            run.feed(RawBatch(frame, group[0][0], lines, keyed=any(p[3] for p in group)))
-            i = j
-        state.dirty = True
-
-    def _flush_all(self) -> None:
-        for state in list(self.keys.values()):
-            if state.pieces:
-                self._flush(state)
+            run = self._load(state)
+            rows = slice(int(bounds[code]), int(bounds[code + 1]))
+            mine = RawBatch(counted.iloc[rows], first.origin, ordered.lines[rows],
+                            keyed=keyed)
+            run.feed(mine, ordered.take(rows, mine, run.encoder.decimals))
+            state.dirty = True
 
     def _load(self, state: KeyState) -> LearnRun:
         """``state``'s run, loaded from its state file (or new) if not in memory."""
@@ -368,11 +351,13 @@ class KeyedRun:
         fresh = state.gen == 0
         for directory in (job.snapshot_dir, _parent(job.metrics_path),
                           _parent(job.events_path), _parent(job.predictions_path),
-                          _parent(job.save_path), _parent(job.summary_path)):
+                          _parent(job.save_path)) if fresh else ():
             if directory:
                 os.makedirs(directory, exist_ok=True)
         if fresh and self.resumes and job.snapshot_dir:
             rollback_snapshots(job.snapshot_dir, 0)   # a key begun after the checkpoint
+        if fresh and self.durable and os.path.exists(job.quarantine_path):
+            os.truncate(job.quarantine_path, 0)       # of an attempt that did not last
         run = LearnRun(job, clock=self.clock, wall=self.wall, warn=self.warn,
                        schema=self.schema)
         run.open_fed()
@@ -385,28 +370,28 @@ class KeyedRun:
         job, folder = self.job, state.folder
         return dataclasses.replace(
             job, by=None, schema_path=None, declared={}, fmt=None,
-            header=None, summary_path=keyed_path(job.summary_path, folder),
+            header=None, summary_path=None,
             save_path=keyed_path(job.save_path, folder),
             snapshot_dir=keyed_path(job.snapshot_dir, folder, directory=True),
             metrics_path=keyed_path(job.metrics_path, folder),
             events_path=keyed_path(job.events_path, folder),
             predictions_path=keyed_path(job.predictions_path, folder),
             quarantine_path=self._key_quarantine(folder),
-            checkpoint_path=self._state_path(state, state.gen),
+            checkpoint_path=self._state_path(state, state.gen) if state.gen else None,
             checkpoint_every=0, checkpoint_seconds=0.0, follow=False, idle_exit=None)
 
     def _key_quarantine(self, folder: str) -> str:
-        """Where a key's own rejects go (records its encoder refuses): beside the
-        quarantine named, else in the key's folder of the first output folder."""
+        """Where a key's own rejects go (records its encoder refuses): in the key's folder
+        of the first output folder, or beside the quarantine named (``<key>.<name>``);
+        created at the first reject."""
         homes = self._homes()
-        if self.job.quarantine_path or not homes:
-            return keyed_path(self.job.quarantine_path or DEFAULT_QUARANTINE, folder)
-        return os.path.join(homes[0], folder, DEFAULT_QUARANTINE)
+        if homes and not self.job.quarantine_path:
+            return os.path.join(homes[0], folder, DEFAULT_QUARANTINE)
+        head, name = os.path.split(self.job.quarantine_path or DEFAULT_QUARANTINE)
+        return os.path.join(head, f"{folder}.{name}")
 
     def _state_path(self, state: KeyState, gen: int) -> str:
-        folder = os.path.join(self.state_dir, state.folder)
-        os.makedirs(folder, exist_ok=True)
-        return os.path.join(folder, f"state-{gen}.ckpt")
+        return os.path.join(self.state_dir, f"{state.folder}.state-{gen}.ckpt")
 
     def _save_state(self, state: KeyState) -> None:
         """Write ``state``'s run to a new state file; the one before it goes unless the
@@ -414,16 +399,23 @@ class KeyedRun:
         run = state.run
         previous = state.gen
         state.gen += 1
-        run.checkpoint.path = self._state_path(state, state.gen)
+        self._point(run, self._state_path(state, state.gen))
         run.checkpoint.write(run)
         state.dirty = False
         if previous and previous != state.saved_gen:
             _remove(self._state_path(state, previous))
 
+    def _point(self, run: LearnRun, path: str) -> None:
+        """Make ``run`` write its next state to ``path`` (a key begun in this run has no
+        checkpoint yet: looking for one costs file-system calls every new key would
+        pay)."""
+        if run.checkpoint is None:
+            run.checkpoint = RunCheckpoint(dataclasses.replace(run.job, checkpoint_path=path),
+                                           self.warn)
+        run.checkpoint.path = path
+
     def _evict(self, state: KeyState) -> None:
         """Save ``state``'s key and drop it from memory."""
-        if state.pieces:
-            self._flush(state)
         if state.dirty or state.gen == 0:
             self._save_state(state)
         state.run.close_fed()
@@ -442,7 +434,7 @@ class KeyedRun:
             if self.durable:
                 previous = state.gen
                 state.gen += 1
-                run.checkpoint.path = self._state_path(state, state.gen)
+                self._point(run, self._state_path(state, state.gen))
                 if previous and previous != state.saved_gen:
                     _remove(self._state_path(state, previous))
             else:
@@ -530,17 +522,13 @@ class KeyedRun:
         quarantine = manifest["quarantine"]
         self.quarantine.count = int(quarantine["count"])
         truncate_for_resume(self.quarantine.path, quarantine["bytes"], "quarantine file")
-        named = {}
+        named = set()
         for key, entry in manifest["keys"].items():
             state = KeyState(str(key), str(entry["folder"]), gen=int(entry["state"]),
                              saved_gen=int(entry["state"]))
             self.keys[state.key] = state
-            named[state.folder] = f"state-{state.gen}.ckpt"
-        for entry in os.scandir(self.state_dir):
-            if entry.is_dir():
-                for item in os.scandir(entry.path):
-                    if item.name != named.get(entry.name):
-                        _remove(item.path)
+            named.add(os.path.basename(self._state_path(state, state.gen)))
+        _clear_states(self.state_dir, keep=named)
 
     # ------------------------------------------------------------------ live feeds, signals
     def _on_quiet(self) -> None:
@@ -634,11 +622,22 @@ def _pooled(summaries: list[dict], task: str | None) -> dict:
     return {"accuracy": sum((s.get("accuracy") or 0.0) * n for s, n in learned) / total}
 
 
+_NOT_INDEXED = {"seconds", "records_per_second", "startup_seconds", "resumes",
+                "resumed_at", "target", "task"}
+
+
 def _index_entry(summary: dict) -> dict:
-    names = ("key", "folder", "records", "learned", "quarantined", "accuracy", "kappa",
-             "mae", "rmse", "r2", "concern", "concern_recall", "leaves", "depth", "swaps",
-             "drift_alarms")
-    return {n: summary[n] for n in names if n in summary}
+    """A key's line in the index: its summary's figures (no timings, paths or lists)."""
+    return {k: v for k, v in summary.items() if k not in _NOT_INDEXED
+            and (v is None or isinstance(v, (str, int, float, bool)))}
+
+
+def _absent(values: pd.Series) -> np.ndarray:
+    """Where a key value is missing (as :func:`~stream.run.values.missing_mask` says),
+    on text columns without turning them into Python strings first."""
+    if values.dtype.kind in "OSU" or isinstance(values.dtype, pd.StringDtype):
+        return (values.isna() | values.isin(list(MISSING_MARKERS))).to_numpy(dtype=bool)
+    return missing_mask(values)
 
 
 def _without_key(schema: Schema, field: str) -> Schema:
@@ -661,12 +660,14 @@ def _flushed_length(quarantine: QuarantineFile) -> int | None:
     return fsync_length(quarantine.path) if os.path.exists(quarantine.path) else None
 
 
-def _clear_states(directory: str) -> None:
-    """Remove the key folders of state files in ``directory``."""
+_STATE_FILE = re.compile(r".+\.state-\d+\.ckpt(\.prev|\.corrupt)?$")
+
+
+def _clear_states(directory: str, keep: set[str] = frozenset()) -> None:
+    """Remove the keys' state files in ``directory`` but those named in ``keep``."""
     for entry in os.scandir(directory):
-        if entry.is_dir() and all(item.name.startswith("state-")
-                                  for item in os.scandir(entry.path)):
-            shutil.rmtree(entry.path)
+        if entry.is_file() and _STATE_FILE.match(entry.name) and entry.name not in keep:
+            os.unlink(entry.path)
 
 
 def _remove(path: str) -> None:

@@ -408,6 +408,19 @@ def _per_class(cm: np.ndarray, labels: list[str]) -> dict:
     return out
 
 
+
+def _padded(a: np.ndarray, extra: int) -> np.ndarray:
+    """``a`` (a vector or a square matrix) with ``extra`` more zero rows (and columns);
+    what ``np.pad`` does, without its cost on small arrays."""
+    if a.ndim == 1:
+        out = np.zeros(a.shape[0] + extra, dtype=a.dtype)
+        out[:a.shape[0]] = a
+    else:
+        n = a.shape[0]
+        out = np.zeros((n + extra, n + extra), dtype=a.dtype)
+        out[:n, :n] = a
+    return out
+
 class ClassificationScore:
     """Prequential classification metrics over integer class codes.
 
@@ -463,11 +476,11 @@ class ClassificationScore:
         extra = n_classes - self.n_classes_
         if extra <= 0:
             return
-        self.cm_ = np.pad(self.cm_, ((0, extra), (0, extra)))
-        self.window_cm_ = np.pad(self.window_cm_, ((0, extra), (0, extra)))
+        self.cm_ = _padded(self.cm_, extra)
+        self.window_cm_ = _padded(self.window_cm_, extra)
         self._true_n, self._pred_n, self._wtrue_n, self._wpred_n = (
-            np.pad(a, (0, extra)) for a in (self._true_n, self._pred_n,
-                                            self._wtrue_n, self._wpred_n))
+            _padded(a, extra) for a in (self._true_n, self._pred_n,
+                                        self._wtrue_n, self._wpred_n))
         self.n_classes_ = n_classes
 
     def update(self, y: np.ndarray, pred: np.ndarray, n_classes: int) -> list[dict]:
@@ -547,8 +560,8 @@ class ClassificationScore:
             raise ValueError(f"labels must name the {self.n_classes_} class codes seen, "
                              f"each once; got {labels!r}")
         extra = len(labels) - self.n_classes_
-        cm = np.pad(self.cm_, ((0, extra), (0, extra)))
-        wcm = np.pad(self.window_cm_, ((0, extra), (0, extra)))
+        cm = _padded(self.cm_, extra)
+        wcm = _padded(self.window_cm_, extra)
         out = _row(CLASSIFICATION_ROW, self._headline())
         out["window_records"] = min(self.records, self.window)
         out["concern"] = labels[self.concern] if 0 <= self.concern < len(labels) else None

@@ -161,11 +161,13 @@ class RunCheckpoint:
         meta = checkpoint.meta
         try:
             schema = Schema.from_dict(meta["schema"])
+            if run.schema is not None and run.schema.to_dict() == schema.to_dict():
+                schema = run.schema     # the same: keep the run's (columns read for it fit)
             encoder = Encoder.from_state(schema, meta["encoder"])
         except (KeyError, TypeError, ValueError, ConfigError) as exc:
             raise ModelFileError(f"{checkpoint.path!r} holds no usable schema or "
                                  f"encoder: {exc}") from exc
-        if run.schema is not None and run.schema.to_dict() != schema.to_dict():
+        if run.schema is not None and run.schema is not schema:
             raise ConfigError(f"checkpoint {checkpoint.path!r} was written with another "
                               f"schema than {self.job.schema_path!r} holds now; remove "
                               f"the checkpoint to start over")

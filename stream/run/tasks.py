@@ -236,5 +236,11 @@ def warm_up() -> None:
             model.predict(X)
     ClassificationScore(2, 0.9, log_every=1).update(y, scored.pred, 2)
     RegressionScore(2, 0.9, log_every=1).update(np.ones(3), np.zeros(3))
+    from stream.resolution import decimals_of
+
+    from .encoding import _renumbered
+
+    decimals_of(X[:, 0])
+    _renumbered(np.array([1, 0, -1], dtype=np.int64), ["p", "q"])
     warm_regressor()
     _WARM["done"] = True

@@ -202,7 +202,7 @@ def test_markdown_table_has_one_line_per_row(monkeypatch, tmp_path):
 
 def test_suites_and_streams_are_registries(tmp_path):
     assert list(common.SUITES) == ["learners", "drift", "regression", "end-to-end", "memory",
-                                  "feed-path", "feeds", "rules", "false-changes"]
+                                  "feed-path", "feeds", "rules", "false-changes", "keyed"]
     assert list(streams.STREAMS) == ["sea", "agrawal", "hyperplane", "rbf10", "rbf100", "led"]
     assert streams.STREAMS["rbf100"].min_ratio == 50 and streams.STREAMS["sea"].min_ratio == 100
     with pytest.raises(SapwoodError, match="suite must be one of"):

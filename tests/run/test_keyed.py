@@ -65,6 +65,8 @@ def write_agrawal(path: Path, n: int, function: int = 1, seed: int = 11,
 
 
 def keyed_job(data: Path, out: Path, by: str, **extra) -> LearnJob:
+    extra.setdefault("batch_rows", 1000)
+    (out / "logs").mkdir(parents=True, exist_ok=True)   # as for a single run's files
     return LearnJob(sources=[str(data)], target="class", by=by,
                     declared={n: "category" for n in NOMINAL if n != by},
                     snapshot_dir=str(out / "rules"), snapshot_every=4000,
@@ -107,6 +109,8 @@ def test_each_key_is_the_run_of_its_own_records(agrawal, tmp_path):
     summary = KeyedRun(keyed_job(data, tmp_path / "k", "elevel")).run()
     keys = sorted(frame["elevel"].unique())
     assert summary["keys"] == len(keys) == 5
+    index = {e["key"]: e for e in json.loads(
+        (tmp_path / "k" / "logs" / "keys.json").read_text())["keys"]}
     assert summary["records"] == summary["learned"] == len(frame)
     schema = tmp_path / "k" / "logs" / "schema.json"
     assert json.loads(schema.read_text())["fields"][3] == {"name": "elevel",
@@ -123,7 +127,7 @@ def test_each_key_is_the_run_of_its_own_records(agrawal, tmp_path):
             predictions_path=str(own / "predictions.csv"),
             events_path=str(own / "events.jsonl"))).run()
         folder = tmp_path / "k" / "logs" / key_folder(key)
-        keyed = json.loads((folder / "run.json").read_text())
+        keyed = index[key]
         assert {f: keyed.get(f) for f in FIGURES} == {f: single.get(f) for f in FIGURES}
         assert (folder / "metrics.jsonl").read_bytes() == (own / "metrics.jsonl").read_bytes()
         ours, theirs = predictions(folder / "predictions.csv"), predictions(
@@ -169,8 +173,7 @@ def test_few_keys_in_memory_change_nothing(agrawal, tmp_path, monkeypatch):
     # reloaded many times; every output equals the run that holds all keys
     data, frame = agrawal
     whole = KeyedRun(keyed_job(data, tmp_path / "all", "car")).run()
-    monkeypatch.setattr(keyed, "FLUSH_RECORDS", 150)
-    monkeypatch.setattr(keyed, "BUFFERED_RECORDS", 1000)
+    monkeypatch.setattr(keyed, "WINDOW_RECORDS", 700)
     tight = KeyedRun(keyed_job(data, tmp_path / "few", "car", keys_in_memory=3)).run()
     assert whole["evictions"] == 0 and tight["evictions"] > 20 and tight["reloads"] > 0
     assert tight["keys"] == whole["keys"] == 20
@@ -198,8 +201,9 @@ def test_records_without_a_key_are_quarantined_and_late_keys_get_a_tree(tmp_path
     lines = [json.loads(x) for x in (tmp_path / "logs" / "quarantine.jsonl").open()]
     assert [q["line"] for q in lines] == (blank + 2).tolist()
     assert lines[0]["field"] == "elevel" and "no value for the key field" in lines[0]["reason"]
-    late = json.loads((tmp_path / "logs" / "late" / "run.json").read_text())
-    assert late["learned"] == 200
+    index = json.loads((tmp_path / "logs" / "keys.json").read_text())["keys"]
+    late = [e for e in index if e["key"] == "late"]
+    assert late[0]["learned"] == 200 and index[-1] is late[0]
     assert summary["records"] == 10_000 and summary["learned"] == 10_000 - 10
 
 
