@@ -228,6 +228,9 @@ class KeyedRun:
             if pending:
                 self._start(pending)
             self._flush_all()
+            if not self.durable and self.position is not None \
+                    and hasattr(self.source, "commit"):
+                self.source.commit(self.position)
             summaries = self._finish_keys()
             self.finished = self.clock()
             if self.durable and self.schema is not None:
@@ -298,6 +301,9 @@ class KeyedRun:
             self.position = batch.position
         if live or self.window_rows >= WINDOW_RECORDS:
             self._flush_all()
+            if not self.durable and self.position is not None \
+                    and hasattr(self.source, "commit"):
+                self.source.commit(self.position)   # learned; nothing durable to wait for
         if self.durable and self._checkpoint_due():
             self._checkpoint()
         if self.progress is not None:

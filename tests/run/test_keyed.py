@@ -32,6 +32,7 @@ import pytest
 from river import tree as river_tree
 from river.datasets import synth
 
+from connectors.local_brokers import REDIS_SERVER, LocalRedis
 from stream.child_env import same_code_env
 from stream.errors import ConfigError
 from stream.run.engine import LearnRun
@@ -284,3 +285,35 @@ def test_a_killed_keyed_run_ends_as_an_uninterrupted_one(tmp_path):
         lines = predictions(b / "predictions.csv")["line"].astype(int)
         assert lines.is_unique and len(lines) == (frame["car"] == key).sum()
         assert final_rules(reference / "rules" / key) == final_rules(killed / "rules" / key)
+
+
+@pytest.mark.skipif(REDIS_SERVER is None, reason="redis-server is not installed "
+                                                 "(bash .ci/brokers.sh install adds it)")
+def test_a_keyed_run_from_a_redis_stream_acknowledges_what_it_learned(agrawal, tmp_path):
+    # redis-server (Debian's package) on a loopback port; the records of the file as
+    # stream entries. Every key's predictions equal those of the keyed run over the file,
+    # and the group holds no entry pending at the end.
+    data, frame = agrawal
+    part = frame.iloc[:6000]
+    (tmp_path / "redis").mkdir()
+    server = LocalRedis(tmp_path / "redis", durable=False).start()
+    try:
+        client = server.client()
+        pipe = client.pipeline(transaction=False)
+        for row in part.to_dict("records"):
+            pipe.xadd("fleet", row)
+        pipe.execute()
+        job = keyed_job(server.url(stream="fleet", group="g", idle_exit=1),
+                        tmp_path / "broker", "elevel")
+        summary = KeyedRun(job).run()
+        pending = client.xpending("fleet", "g")["pending"]
+    finally:
+        server.stop()
+    assert summary["learned"] == 6000 and pending == 0
+    small = tmp_path / "file.csv"
+    part.to_csv(small, index=False)
+    KeyedRun(keyed_job(small, tmp_path / "file", "elevel")).run()
+    for key in part["elevel"].unique():
+        ours = predictions(tmp_path / "broker" / "logs" / key / "predictions.csv")
+        theirs = predictions(tmp_path / "file" / "logs" / key / "predictions.csv")
+        assert ours["predicted"].tolist() == theirs["predicted"].tolist()
