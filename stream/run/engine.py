@@ -55,6 +55,7 @@ from .reading import held_enough, infer_run_schema, open_run_source
 from .resume import RunCheckpoint
 from .saved_model import save_model
 from .schema import Schema, load_schema, not_a_field
+from .stopping import StopsOnSignal
 from .summary import rules_header, run_summary, tree_facts
 from .tasks import TASKS, warm_up
 
@@ -64,7 +65,7 @@ LIVE_INFER_SECONDS = 5.0
 schema is inferred from what came), unless ``INFER_ROWS`` records come first."""
 
 
-class LearnRun:
+class LearnRun(StopsOnSignal):
     """State of one learning run; :meth:`run` drives it to the end of the stream.
 
     ``warn`` receives messages for the operator (a damaged checkpoint fallen back from);
@@ -478,22 +479,6 @@ class LearnRun:
         if self.alerts is not None:
             gap = min(gap, self.alerts.records_to_boundary(learned))
         return min(gap, to_snapshot) if to_snapshot else gap
-
-    # ------------------------------------------------------------------ stopping
-    def _catch_signals(self) -> dict:
-        """SIGINT/SIGTERM ask the run to stop after the current batch (main thread only)."""
-        if threading.current_thread() is not threading.main_thread():
-            return {}
-        previous = {}
-        for signum in (signal.SIGINT, signal.SIGTERM):
-            previous[signum] = signal.signal(signum, self._on_signal)
-        return previous
-
-    def _on_signal(self, signum, frame) -> None:
-        if self.stop.is_set():
-            raise KeyboardInterrupt  # a second signal: stop now
-        self.stopped = signal.Signals(signum).name
-        self.stop.set()
 
     # ------------------------------------------------------------------ results
     def header(self) -> dict:

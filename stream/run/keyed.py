@@ -63,12 +63,13 @@ from .checkpoint import (
     truncate_for_resume,
 )
 from .encoding import prepare_columns
-from .engine import LearnRun
+from .engine import LIVE_INFER_SECONDS, LearnRun
 from .resume import RunCheckpoint
 from .job import LearnJob
 from .outputs import DEFAULT_QUARANTINE, QuarantineFile, json_default
 from .reading import held_enough, infer_run_schema, open_run_source
 from .schema import Schema, load_schema, not_a_field
+from .stopping import StopsOnSignal
 from .tasks import warm_up
 from .values import MISSING_MARKERS, missing_mask
 
@@ -152,7 +153,7 @@ class KeyState:
     summary: dict | None = None
 
 
-class KeyedRun:
+class KeyedRun(StopsOnSignal):
     """A run that learns one tree per value of ``job.by``; :meth:`run` returns the
     summary (per-key summaries go to each key's folder)."""
 
@@ -178,6 +179,7 @@ class KeyedRun:
         self.stop = threading.Event()
         self.stopped: str | None = None
         self.source = None
+        self._pending: list[RawBatch] = []
         self.quarantine = QuarantineFile(job.quarantine_path or DEFAULT_QUARANTINE)
         self.durable = job.checkpoint_path is not None
         if self.durable:
@@ -210,23 +212,26 @@ class KeyedRun:
         if hasattr(self.source, "on_quiet"):
             self.source.on_quiet = self._on_quiet
         handlers = self._catch_signals() if self.durable or job.follow else {}
-        pending: list[RawBatch] = []
+        self._pending: list[RawBatch] = []
+        held_since = None
         try:
             try:
                 for batch in self.source.batches():
                     if self.schema is None:
-                        pending.append(batch)
-                        if held_enough(pending):
-                            self._start(pending)
-                            pending = []
+                        self._pending.append(batch)
+                        held_since = held_since if held_since is not None else self.clock()
+                        # a live feed that never falls quiet is not held back for long
+                        if held_enough(self._pending) or live and \
+                                self.clock() - held_since >= LIVE_INFER_SECONDS:
+                            self._start()
                     else:
                         self._dispatch(batch, live)
                     if self.stop.is_set():
                         break
             except FollowStopped as exc:
                 self.stopped = self.stopped or exc.reason
-            if pending:
-                self._start(pending)
+            if self._pending:
+                self._start()
             self._flush_all()
             if not self.durable and self.position is not None \
                     and hasattr(self.source, "commit"):
@@ -254,9 +259,10 @@ class KeyedRun:
             raise OutputError("; ".join(failures), summary)
         return summary
 
-    def _start(self, pending: list[RawBatch]) -> None:
-        """The schema from the first records (the key field left out), then those
+    def _start(self) -> None:
+        """The schema from the records held back (the key field left out), then those
         records learned."""
+        pending, self._pending = self._pending, []
         declared = {**self.job.declared, self.job.by: "ignore"}
         job = dataclasses.replace(self.job, declared=declared)
         columns = {c for b in pending for c in b.frame.columns}
@@ -536,9 +542,12 @@ class KeyedRun:
             named.add(os.path.basename(self._state_path(state, state.gen)))
         _clear_states(self.state_dir, keep=named)
 
-    # ------------------------------------------------------------------ live feeds, signals
+    # ------------------------------------------------------------------ live feeds
     def _on_quiet(self) -> None:
-        """A live feed waited and nothing came: learn what waits, checkpoint if due."""
+        """A live feed waited and nothing came: a slow feed is not held back until
+        ``INFER_ROWS`` records have come; learn what waits, checkpoint if due."""
+        if self.schema is None and self._pending:
+            self._start()
         if self.schema is not None:
             self._flush_all()
             if self.durable and self.job.checkpoint_seconds and \
@@ -547,19 +556,6 @@ class KeyedRun:
         if self.stop.is_set():
             raise FollowStopped("stop")
 
-    def _catch_signals(self) -> dict:
-        if threading.current_thread() is not threading.main_thread():
-            return {}
-        previous = {}
-        for signum in (signal.SIGINT, signal.SIGTERM):
-            previous[signum] = signal.signal(signum, self._on_signal)
-        return previous
-
-    def _on_signal(self, signum, frame) -> None:
-        if self.stop.is_set():
-            raise KeyboardInterrupt
-        self.stopped = signal.Signals(signum).name
-        self.stop.set()
 
     # ------------------------------------------------------------------ results
     def _homes(self) -> list[str]:

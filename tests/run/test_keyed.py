@@ -317,3 +317,51 @@ def test_a_keyed_run_from_a_redis_stream_acknowledges_what_it_learned(agrawal, t
         ours = predictions(tmp_path / "broker" / "logs" / key / "predictions.csv")
         theirs = predictions(tmp_path / "file" / "logs" / key / "predictions.csv")
         assert ours["predicted"].tolist() == theirs["predicted"].tolist()
+
+
+def test_a_followed_keyed_run_stops_on_sigterm_and_goes_on(tmp_path):
+    # SIGTERM while following a file: exit 0 after a keyed checkpoint; records appended
+    # meanwhile are learned by the same command run again, each once, and every key's
+    # predictions equal a run over the whole file at once
+    data = tmp_path / "data.csv"
+    frame = write_agrawal(data, 8000, function=2, seed=7)
+    text = data.read_text().splitlines(keepends=True)
+    data.write_text("".join(text[:4001]))          # the header and 4,000 records
+    (tmp_path / "out" / "logs").mkdir(parents=True)
+
+    def command(*extra: str) -> list[str]:
+        return [sys.executable, "-m", "stream.cli", "learn", str(data), "--target", "class",
+                "--by", "elevel", "--follow", "--poll-seconds", "0.05",
+                "--kind", "car=category", "--kind", "zipcode=category",  # as keyed_job
+                "--predictions", str(tmp_path / "out" / "logs" / "predictions.csv"),
+                "--summary", str(tmp_path / "out" / "logs" / "run.json"),
+                "--checkpoint", str(tmp_path / "out" / "state"), "-q", *extra]
+
+    env = same_code_env()
+    child = subprocess.Popen(command(), env=env)
+    manifest = tmp_path / "out" / "state" / "keyed-checkpoint.json"
+    deadline = time.monotonic() + 120
+    summary_path = tmp_path / "out" / "logs" / "run.json"
+    while time.monotonic() < deadline and child.poll() is None:
+        indexes = list((tmp_path / "out" / "logs").glob("*/predictions.csv"))
+        if indexes and sum(len(p.read_text().splitlines()) - 1 for p in indexes) >= 4000:
+            break
+        time.sleep(0.05)
+    child.send_signal(signal.SIGTERM)
+    assert child.wait(60) == 0
+    stopped = json.loads(summary_path.read_text())
+    assert stopped["stopped"] == "SIGTERM" and manifest.exists()
+    with open(data, "a") as out:
+        out.write("".join(text[4001:]))
+    subprocess.run(command("--idle-exit", "1"), check=True, env=env)
+    summary = json.loads(summary_path.read_text())
+    assert summary["learned"] == 8000 and summary["resumes"] == 1
+    whole = tmp_path / "whole"
+    KeyedRun(keyed_job(data, whole, "elevel")).run()
+    assert (whole / "logs" / "schema.json").read_text() == \
+        (tmp_path / "out" / "logs" / "schema.json").read_text()
+    for key in frame["elevel"].unique():
+        ours = predictions(tmp_path / "out" / "logs" / key / "predictions.csv")
+        theirs = predictions(whole / "logs" / key / "predictions.csv")
+        for column in ours.columns:
+            assert ours[column].tolist() == theirs[column].tolist(), (key, column)
