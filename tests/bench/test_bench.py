@@ -266,3 +266,19 @@ def test_false_changes_suite_counts_per_million_records(tmp_path):
             count = value * 4_000 / 1_000_000       # back to a count of events
             assert count >= 0 and count == pytest.approx(round(count))
     assert [c.target for c in result.checks] == [1.0, 5.0] * 5
+
+
+def test_keyed_suite_compares_keys_with_one_tree_on_the_same_file(tmp_path):
+    run = Bench(tmp_path, records=10_000, streams=("sea",), repeats=1,
+                say=lambda message: None)
+    (result,) = run_bench(run, ["keyed"])
+    # one tree and 10 keys, drift off and ADWIN; 100 keys with 10 in memory, ADWIN
+    assert [(r["drift"], r["keys"], r["in_memory"]) for r in result.rows] == [
+        ("off", 1, 1), ("off", 10, 10), ("adwin", 1, 1), ("adwin", 10, 10),
+        ("adwin", 100, 10)]
+    assert result.rows[-1]["evictions"] > 0
+    assert not [n for n in result.notes if n.startswith("WARNING")]   # every record learned
+    for row in result.rows[1:2] + result.rows[3:4]:
+        one = [r for r in result.rows if r["drift"] == row["drift"] and r["keys"] == 1][0]
+        assert row["ratio"] == pytest.approx(row["rps"] / one["rps"])
+    assert [c.target for c in result.checks] == [0.5, 0.5]
