@@ -133,3 +133,109 @@ class LocalRedis:
     def url(self, userinfo: str = "", **query) -> str:
         q = "&".join(f"{k}={v}" for k, v in query.items())
         return f"redis://{userinfo}127.0.0.1:{self.port}/0?{q}"
+
+
+class LocalRedisCluster:
+    """``nodes`` redis-servers on 127.0.0.1 joined into one Redis Cluster (no replicas),
+    the hash slots split evenly; for the tests of cluster-aware reading.
+
+    Set up with the cluster commands of the Redis documentation (CLUSTER ADDSLOTSRANGE,
+    CLUSTER MEET), waiting until every node reports ``cluster_state:ok``.
+    """
+
+    SLOTS = 16384
+
+    def __init__(self, directory: Path, nodes: int = 3) -> None:
+        self.dir = Path(directory)
+        self.nodes = []
+        taken: set[int] = set()
+
+        def distinct_port() -> int:   # free ports, none picked twice before they bind
+            while (port := free_port()) in taken:
+                pass
+            taken.add(port)
+            return port
+
+        for i in range(nodes):
+            node_dir = self.dir / f"node{i}"
+            node_dir.mkdir(parents=True, exist_ok=True)
+            node = LocalRedis(node_dir, durable=False)
+            node.port = distinct_port()
+            node.bus_port = distinct_port()  # else port + 10000, which may not exist
+            node.extra = ["--cluster-enabled", "yes",
+                          "--cluster-config-file", str(node_dir / "nodes.conf"),
+                          "--cluster-node-timeout", "2000",
+                          "--cluster-port", str(node.bus_port)]
+            self.nodes.append(node)
+
+    @property
+    def port(self) -> int:
+        """The first node's port (any node serves as the address of the cluster)."""
+        return self.nodes[0].port
+
+    def start(self) -> "LocalRedisCluster":
+        for node in self.nodes:
+            node.start()
+        clients = [node.client() for node in self.nodes]
+        share = self.SLOTS // len(self.nodes)
+        for i, client in enumerate(clients):
+            last = self.SLOTS - 1 if i == len(clients) - 1 else (i + 1) * share - 1
+            client.execute_command("CLUSTER", "ADDSLOTSRANGE", i * share, last)
+        for node in self.nodes[1:]:
+            clients[0].execute_command("CLUSTER", "MEET", "127.0.0.1", node.port,
+                                       node.bus_port)
+        deadline = time.monotonic() + 20
+        while time.monotonic() < deadline:
+            if all(b"cluster_state:ok" in c.execute_command("CLUSTER", "INFO")
+                   for c in clients):
+                return self
+            time.sleep(0.1)
+        raise RuntimeError("the Redis Cluster did not reach cluster_state:ok in 20 s")
+
+    def stop(self) -> None:
+        for node in self.nodes:
+            node.stop()
+
+    def owner(self, key: str) -> "LocalRedis":
+        """The node that serves ``key`` now."""
+        client = self.nodes[0].client()
+        slot = client.execute_command("CLUSTER", "KEYSLOT", key)
+        for start, end, (host, port, *_), *_ in client.execute_command("CLUSTER", "SLOTS"):
+            if start <= slot <= end:
+                return next(n for n in self.nodes if n.port == int(port))
+        raise RuntimeError(f"no node serves slot {slot}")
+
+    def move(self, key: str, to: "LocalRedis") -> None:
+        """Move ``key``'s hash slot, with its keys, to node ``to``, as a resharding does."""
+        if self.owner(key) is not to:
+            self.migrate_keys(key, to)
+            self.assign_slot(key, to)
+
+    def migrate_keys(self, key: str, to: "LocalRedis") -> None:
+        """First half of a move: the slot is MIGRATING on its node and IMPORTING on
+        ``to``, and its keys are moved there (MIGRATE); until :meth:`assign_slot` the
+        old node answers ASK for them (Redis Cluster specification, "ASK redirection")."""
+        source = self.owner(key)
+        src, dst = source.client(), to.client()
+        slot = src.execute_command("CLUSTER", "KEYSLOT", key)
+        src_id = src.execute_command("CLUSTER", "MYID").decode()
+        dst_id = dst.execute_command("CLUSTER", "MYID").decode()
+        dst.execute_command("CLUSTER", "SETSLOT", slot, "IMPORTING", src_id)
+        src.execute_command("CLUSTER", "SETSLOT", slot, "MIGRATING", dst_id)
+        while True:
+            keys = src.execute_command("CLUSTER", "GETKEYSINSLOT", slot, 100)
+            if not keys:
+                break
+            src.execute_command("MIGRATE", "127.0.0.1", to.port, "", 0, 5000,
+                                "KEYS", *keys)
+
+    def assign_slot(self, key: str, to: "LocalRedis") -> None:
+        """Second half of a move: every node is told that ``to`` serves the slot
+        (CLUSTER SETSLOT ... NODE); the old node answers MOVED from then on."""
+        slot = to.client().execute_command("CLUSTER", "KEYSLOT", key)
+        dst_id = to.client().execute_command("CLUSTER", "MYID").decode()
+        for node in [to] + [n for n in self.nodes if n is not to]:
+            node.client().execute_command("CLUSTER", "SETSLOT", slot, "NODE", dst_id)
+
+    def url(self, userinfo: str = "", **query) -> str:
+        return self.nodes[0].url(userinfo, **query)

@@ -33,6 +33,11 @@ How exactly-once works (Redis documentation of XREADGROUP, XACK, XPENDING, XAUTO
 * Entries deleted from the stream before they were read (XDEL, MAXLEN trimming) come
   back as ids without fields; they go to quarantine and are acknowledged.
 
+On a Redis Cluster any node serves as the address: the source uses a cluster-aware
+client (:mod:`connectors.redis_clients`) that follows MOVED and ASK, so reading goes on
+when the stream's hash slot moves to another node; the connection closed after a loss
+is the one on the node that served the stream then.
+
 Assumptions: one learner per consumer group (``claim=false`` lets several learners
 share a group, each under its own fixed consumer name, each recovering only its own
 pending entries); the checkpoint given to :meth:`seek` is the latest one (an older
@@ -56,6 +61,7 @@ from .base import RawBatch, Reject
 from .broker_payloads import (DEFAULT_LINGER, MAX_MESSAGE_BYTES, PAYLOAD_FORMATS, Backoff,
                               Options, Parsed, frame_from_fields, input_error,
                               parse_address, parse_payloads, with_retries)
+from .redis_clients import node_address, node_of, open_redis
 
 log = logging.getLogger("sapwood.connectors")
 
@@ -63,6 +69,7 @@ FORMATS = ("fields",) + PAYLOAD_FORMATS
 _PORTS = {"redis": 6379, "rediss": 6379}
 _ACK_CHUNK = 10000
 _CLAIM_COUNT = 1000
+_REDIRECTS = 16  # MOVED/ASK replies followed for one command, as redis-py's cluster client
 READ_COUNT = 8192
 """Most entries one XREADGROUP asks for (a batch holds at most this many): measured on
 200k entries of 4 fields, a whole run read 125k records/s at 65,536 per read and 145k
@@ -80,6 +87,14 @@ def entry_id(text: str | bytes) -> tuple[int, int]:
 def _raw(response, **options):
     """Keep a reply as the server sent it (lists of bytes): no dict per entry."""
     return response
+
+
+def _raw_replies(client):
+    """``client`` with the replies of the reading commands kept raw."""
+    if client.response_callbacks.get("XREADGROUP") is not _raw:
+        for command in ("XREADGROUP", "XAUTOCLAIM", "XPENDING"):
+            client.set_response_callback(command, _raw)
+    return client
 
 
 class _Tags:
@@ -203,8 +218,10 @@ class RedisStreamSource:
         self._sleep = sleep
         self._backoff = Backoff(0.5, 30.0, rng)
         self._client = None
-        self._client_id: int | None = None    # the server's id of our connection
-        self._stale_ids: list[int] = []       # ids of connections lost, to be closed
+        self.cluster = False                  # whether the server is a cluster node
+        # (host:port, the server's id) of our connection, and of connections lost
+        self._client_id: tuple[str, int | None] | None = None
+        self._stale_ids: list[tuple[str, int]] = []
         self._seq = 0
         self._covered: tuple[int, int] | None = None  # last id of the checkpoint
         self._high: tuple[int, int] | None = None  # covered or handed out, whichever later
@@ -261,56 +278,106 @@ class RedisStreamSource:
             kwargs.update(ssl=True, ssl_ca_certs=self._ca, ssl_certfile=self._cert,
                           ssl_keyfile=self._key,
                           ssl_check_hostname=not self._tls_insecure)
-        client = redis.Redis(host=self._address.host, port=self._address.port, db=self._db,
-                             username=self._username, password=self._password,
-                             socket_connect_timeout=self._connect_timeout,
-                             socket_timeout=self._linger + self._connect_timeout,
-                             retry=Retry(NoBackoff(), 0),  # sapwood retries, with backoff
-                             protocol=2,  # replies shaped as the command docs show them
-                             client_name=f"sapwood:{self._consumer}", **kwargs)
-        for command in ("XREADGROUP", "XAUTOCLAIM", "XPENDING"):
-            client.set_response_callback(command, _raw)
         try:
-            client.ping()
+            client, self.cluster = open_redis(
+                self._address.host, self._address.port, self._db, self.name,
+                username=self._username, password=self._password,
+                socket_connect_timeout=self._connect_timeout,
+                socket_timeout=self._linger + self._connect_timeout,
+                retry=Retry(NoBackoff(), 0),  # sapwood retries, with backoff
+                client_name=f"sapwood:{self._consumer}", **kwargs)
         except redis.AuthenticationError as exc:
             raise input_error(self.name, f"the server refused the credentials: {exc}") from exc
         except redis.ResponseError as exc:
             raise input_error(self.name, f"the server refused the connection: {exc}") from exc
         self._client = client
-        self._close_stale(client)
-        try:
-            self._client_id = int(client.client_id())
-        except redis.ResponseError:     # an ACL without CLIENT ID: nothing to close later
-            self._client_id = None
+        self._close_stale()
+        self._client_id = None
         self._create_group()
 
-    def _close_stale(self, client) -> None:
+    def _stream_node(self):
+        """The plain client of the node serving the stream (the one server's client when
+        there is no cluster), its replies kept raw."""
+        node = _raw_replies(node_of(self._client, self._stream))
+        self._track_node(node)
+        return node
+
+    def _execute(self, *command: Any):
+        """Send one command on the stream to the node serving it; on a cluster, follow
+        MOVED (the slot map is refreshed) and ASK (ASKING, then the command, on one
+        connection), as the Redis Cluster specification describes."""
+        from redis.exceptions import AskError, MovedError, ResponseError
+
+        for _ in range(_REDIRECTS):
+            node = self._stream_node()
+            try:
+                return node.execute_command(*command)
+            except MovedError:           # the slot moved: read the cluster's map again
+                self._client.nodes_manager.initialize()
+            except AskError as exc:      # the slot is migrating and the key has left
+                target = _raw_replies(self._node(f"{exc.host}:{exc.port}"))
+                pipe = target.pipeline(transaction=False)
+                pipe.execute_command("ASKING")
+                pipe.execute_command(*command)
+                return pipe.execute()[1]
+            except ResponseError as exc:
+                # a read blocked while the stream migrated away ends so; ask again
+                if not str(exc).startswith("UNBLOCKED"):
+                    raise
+        raise input_error(self.name, f"the cluster redirected a command on stream "
+                                     f"{self._stream!r} {_REDIRECTS} times")
+
+    def _track_node(self, node) -> None:
+        """Know the server's id of the connection that reads the stream (on a cluster,
+        again whenever the stream's slot has moved to another node)."""
+        import redis
+
+        address = node_address(node)
+        if self._client_id is not None and self._client_id[0] == address:
+            return
+        try:
+            self._client_id = (address, int(node.client_id()))
+        except redis.ResponseError:     # an ACL without CLIENT ID: nothing to close later
+            self._client_id = (address, None)
+
+    def _close_stale(self) -> None:
         """Close, on the server, the connections this source lost.
 
         A command sent on a connection that then went dead may reach the server long
         after (TCP delivers it once the link is back) and an XREADGROUP there would
         assign entries to this consumer on a connection nobody reads: entries pending
-        but never seen, or seen out of order. Closing the old connection (CLIENT KILL ID)
-        before this consumer reads its pending entries again rules that out.
+        but never seen, or seen out of order. Closing the old connection (CLIENT KILL ID,
+        on the node that had it) before this consumer reads its pending entries again
+        rules that out.
         """
         import redis
 
         while self._stale_ids:
-            stale = self._stale_ids.pop()
+            address, stale = self._stale_ids.pop()
             try:
-                client.execute_command("CLIENT", "KILL", "ID", stale)
-            except redis.ResponseError as exc:
+                self._node(address).execute_command("CLIENT", "KILL", "ID", stale)
+            except (redis.ResponseError, LookupError) as exc:
                 if "No such client" not in str(exc):
-                    log.warning("%s: cannot close the lost connection %d (%s); entries a "
-                                "late command assigns to it are read before the run ends",
-                                self.name, stale, exc)
+                    log.warning("%s: cannot close the lost connection %d of %s (%s); "
+                                "entries a late command assigns to it are read before "
+                                "the run ends", self.name, stale, address, exc)
+
+    def _node(self, address: str):
+        """The plain client of the node at host:port (of the one server if no cluster)."""
+        if not self.cluster:
+            return self._client
+        host, _, port = address.rpartition(":")
+        node = self._client.get_node(host=host, port=int(port))
+        if node is None:
+            raise LookupError(f"{address} is no longer a node of the cluster")
+        return self._client.get_redis_connection(node)
 
     def _create_group(self) -> None:
         import redis
 
         try:
-            self._client.execute_command("XGROUP", "CREATE", self._stream, self._group,
-                                         self._start, "MKSTREAM")
+            self._execute("XGROUP", "CREATE", self._stream, self._group, self._start,
+                          "MKSTREAM")
         except redis.ResponseError as exc:
             if "BUSYGROUP" not in str(exc):
                 raise input_error(self.name, f"cannot create consumer group "
@@ -333,7 +400,7 @@ class RedisStreamSource:
             if self._client is None:
                 self._connect_once()
             try:
-                return command, self._client.execute_command(*command)
+                return command, self._execute(*command)
             except self._retriable():
                 self._lost_connection()
                 raise
@@ -345,14 +412,14 @@ class RedisStreamSource:
                 log.warning("%s: consumer group %r is gone; creating it again",
                             self.name, self._group)
                 self._create_group()
-                return command, self._client.execute_command(*command)
+                return command, self._execute(*command)
 
         return with_retries(attempt, display=self.name, backoff=self._backoff,
                             give_up=self._retry, clock=self._clock, sleep=self._sleep,
                             retriable=self._retriable(), what="reach the server")
 
     def _lost_connection(self) -> None:
-        if self._client_id is not None:
+        if self._client_id is not None and self._client_id[1] is not None:
             self._stale_ids.append(self._client_id)
             self._client_id = None
         self._drop_client()

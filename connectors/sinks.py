@@ -9,6 +9,7 @@ line, id, predicted, confidence, rule) and hands it to :meth:`PredictionSink.wri
 * ``redis[s]://[user:password@]host[:port][/db]?stream=KEY[&maxlen=N]`` appends one
   stream entry per record (XADD, the columns as fields, missing values as empty text) in
   one pipelined round trip; ``maxlen`` trims the stream to about N entries (``MAXLEN ~``).
+  Any node of a Redis Cluster serves as the address (:mod:`connectors.redis_clients`).
 
 Names and error messages show the URL with its password replaced by ``***``.
 """
@@ -24,6 +25,7 @@ import pandas as pd
 from stream.errors import ConfigError, InputError
 
 from .broker_payloads import Options, parse_address, redacted, scheme_of
+from .redis_clients import open_redis
 
 
 _WINDOW = 10000
@@ -182,13 +184,12 @@ class RedisPredictionSink:
         if address.scheme == "rediss":
             tls = dict(ssl=True, ssl_ca_certs=ca, ssl_certfile=cert, ssl_keyfile=key,
                        ssl_check_hostname=not insecure)
-        self._client = redis.Redis(host=address.host, port=address.port, db=int(db_text),
-                                   username=username, password=password,
-                                   socket_timeout=timeout, socket_connect_timeout=timeout,
-                                   protocol=2, **tls)
         self._errors = (redis.RedisError, OSError)
         try:
-            self._client.ping()
+            self._client, _ = open_redis(address.host, address.port, int(db_text),
+                                         self.name, username=username, password=password,
+                                         socket_timeout=timeout,
+                                         socket_connect_timeout=timeout, **tls)
         except self._errors as exc:
             raise _output_error(self.name, str(exc), what) from exc
 
