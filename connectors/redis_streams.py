@@ -61,6 +61,7 @@ from .base import RawBatch, Reject
 from .broker_payloads import (DEFAULT_LINGER, MAX_MESSAGE_BYTES, PAYLOAD_FORMATS, Backoff,
                               Options, Parsed, frame_from_fields, input_error,
                               parse_address, parse_payloads, with_retries)
+from .fencing import ACK_CHUNK, Fence
 from .redis_clients import node_address, node_of, open_redis
 
 log = logging.getLogger("sapwood.connectors")
@@ -131,7 +132,9 @@ class RedisStreamSource:
         ``stream`` (required), ``group`` (default sapwood), ``consumer`` (default
         sapwood), ``start`` (where a new group starts: 0 for the whole stream, the
         default, or $ for new entries only, or an entry id), ``claim`` (take over other
-        consumers' pending entries at start, default true), ``format`` (fields, json,
+        consumers' pending entries at start, default true), ``fence`` (take a fencing
+        epoch at start and acknowledge and checkpoint only while it is the latest,
+        default true; :mod:`connectors.fencing`), ``format`` (fields, json,
         csv), ``field`` (the payload field of json/csv, default payload), ``columns``
         (csv field names), ``id_field`` (put each entry id in this column), ``linger``
         (s a read waits for entries, default 0.2), ``idle_exit`` (end after this many s
@@ -180,6 +183,7 @@ class RedisStreamSource:
                 raise ConfigError(f"start must be 0, $ or an entry id, got "
                                   f"{self._start!r} (in {self.name!r})") from None
         self._claim = opts.flag("claim", True)
+        self._fenced = opts.flag("fence", True)
         self._format = opts.choice("format", "fields", FORMATS)
         self._field = opts.text("field", "payload").encode()
         columns = opts.raw("columns")
@@ -232,6 +236,7 @@ class RedisStreamSource:
         self._cursor: bytes = b"0"  # an id: own pending entries after it; b">": new ones
         self._recovered = False
         self._closed = False
+        self.fence: Fence | None = None
 
     # ------------------------------------------------------------------ positions
     def seek(self, position: dict) -> None:
@@ -405,6 +410,8 @@ class RedisStreamSource:
                 self._lost_connection()
                 raise
             except redis.ResponseError as exc:
+                if str(exc).startswith("SUPERSEDED") and self.fence is not None:
+                    raise self.fence.superseded(str(exc).split()[-1]) from None
                 if "NOGROUP" not in str(exc):
                     raise input_error(self.name, str(exc)) from exc
                 # the group (or stream) is gone, e.g. a server restarted without
@@ -438,8 +445,18 @@ class RedisStreamSource:
                 pass
 
     def _ack(self, ids: Sequence[bytes]) -> None:
-        for i in range(0, len(ids), _ACK_CHUNK):
-            self._call("XACK", self._stream, self._group, *ids[i:i + _ACK_CHUNK])
+        if self.fence is None:
+            for i in range(0, len(ids), _ACK_CHUNK):
+                self._call("XACK", self._stream, self._group, *ids[i:i + _ACK_CHUNK])
+            return
+        for i in range(0, len(ids), ACK_CHUNK):
+            self._call(*self.fence.ack_command(self._group, list(ids[i:i + ACK_CHUNK])))
+
+    def fence_check(self) -> None:
+        """Raise SupersededError if a later learner of this stream has started (called
+        before a checkpoint file changes); nothing when the source is not fenced."""
+        if self.fence is not None:
+            self.fence.check()
 
     # ------------------------------------------------------------------ reading
     def _claim_others(self) -> list[Reject]:
@@ -480,6 +497,11 @@ class RedisStreamSource:
                 with_retries(self._connect_once, display=self.name, backoff=self._backoff,
                              give_up=self._retry, clock=self._clock, sleep=self._sleep,
                              retriable=self._retriable(), what="connect")
+            if self._fenced:
+                owner = self._group if self._claim else f"{self._group}:{self._consumer}"
+                self.fence = Fence(self._stream, owner, self.name,
+                                   lambda *command: self._call(*command)[1], self.cluster)
+                self.fence.take()
             claimed = self._claim_others() if self._claim else []
             if claimed:
                 yield RawBatch(pd.DataFrame(index=pd.RangeIndex(0)), self._stream,
@@ -488,6 +510,12 @@ class RedisStreamSource:
         block_ms = max(1, int(round(self._linger * 1000)))
         while True:
             entries, pending = self._read(block_ms)
+            if entries and not pending and self.fence is not None \
+                    and self._skipped_pending(entries[0][0]):
+                # a superseded learner under this consumer name took entries before
+                # these: read them all again from the pending list, in id order
+                self._cursor = self._last_text.encode() if self._last_text else b"0"
+                continue
             if pending:
                 if not entries:
                     self._cursor = b">"
@@ -507,6 +535,14 @@ class RedisStreamSource:
                     return
                 if self.on_quiet is not None:
                     self.on_quiet()
+
+    def _skipped_pending(self, first: bytes) -> bool:
+        """Whether this consumer holds pending entries between the last one handed out
+        and ``first``, the first of a read of new entries (XPENDING, extended form)."""
+        start = "(" + self._last_text if self._last_text else "-"
+        _, reply = self._call("XPENDING", self._stream, self._group, start,
+                              b"(" + first, 1, self._consumer)
+        return bool(reply)
 
     def _unread_pending(self) -> bool:
         """Whether this consumer holds pending entries after the last one handed out:

@@ -1,7 +1,9 @@
 """Every exception sapwood raises on purpose, each with the exit code the CLI maps it to.
 
 Exit codes (a contract other tools rely on): 0 done, 1 bad usage or configuration,
-2 input could not be read, 3 a result could not be written (the summary still is). Messages say *where*: the source, the line or offset, the
+2 input could not be read, 3 a result could not be written (the summary still is),
+4 superseded: a later learner of the same Redis stream has started (nothing more is
+written; a supervisor should not restart this one). Messages say *where*: the source, the line or offset, the
 field and the bad value, e.g. ``line 1042, field 'supply_temp': 'abc' is not a number``.
 """
 
@@ -11,6 +13,7 @@ EXIT_OK = 0
 EXIT_USAGE = 1
 EXIT_INPUT = 2
 EXIT_OUTPUT = 3
+EXIT_SUPERSEDED = 4
 
 
 class SapwoodError(Exception):
@@ -58,3 +61,10 @@ class OutputError(SapwoodError):
     def __init__(self, message: str, summary: dict | None = None) -> None:
         super().__init__(message)
         self.summary = summary
+
+
+class SupersededError(SapwoodError):
+    """A later learner of the same stream took a new fencing epoch: this one must stop
+    without acknowledging or checkpointing (see :mod:`connectors.fencing`)."""
+
+    exit_code = EXIT_SUPERSEDED

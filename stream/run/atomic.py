@@ -25,7 +25,7 @@ from __future__ import annotations
 import contextlib
 import os
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from typing import IO
 
 from stream.errors import ConfigError
@@ -33,7 +33,8 @@ from stream.errors import ConfigError
 _MODES = ("wb", "w")
 
 
-def write_atomic(path: str | os.PathLike, data: bytes | str) -> None:
+def write_atomic(path: str | os.PathLike, data: bytes | str,
+                 before_replace: Callable[[], None] | None = None) -> None:
     """Replace ``path`` with ``data`` atomically (``str`` is written as UTF-8).
 
     Parameters
@@ -42,15 +43,19 @@ def write_atomic(path: str | os.PathLike, data: bytes | str) -> None:
         Target file; its directory must exist.
     data
         The whole new content.
+    before_replace
+        Called once the new content is on disk, just before it replaces ``path``; an
+        exception from it leaves ``path`` as it was (a fencing check).
     """
     if isinstance(data, str):
         data = data.encode("utf-8")
-    with atomic_writer(path, "wb") as handle:
+    with atomic_writer(path, "wb", before_replace) as handle:
         handle.write(data)
 
 
 @contextlib.contextmanager
-def atomic_writer(path: str | os.PathLike, mode: str = "wb") -> Iterator[IO]:
+def atomic_writer(path: str | os.PathLike, mode: str = "wb",
+                  before_replace: Callable[[], None] | None = None) -> Iterator[IO]:
     """Yield a file whose content replaces ``path`` only when the block ends without error.
 
     Parameters
@@ -59,6 +64,8 @@ def atomic_writer(path: str | os.PathLike, mode: str = "wb") -> Iterator[IO]:
         Target file; its directory must exist.
     mode
         ``"wb"`` for bytes or ``"w"`` for text (UTF-8, newlines written as given).
+    before_replace
+        As in :func:`write_atomic`.
 
     Examples
     --------
@@ -91,6 +98,8 @@ def atomic_writer(path: str | os.PathLike, mode: str = "wb") -> Iterator[IO]:
             yield handle
             handle.flush()
             os.fsync(handle.fileno())
+        if before_replace is not None:
+            before_replace()
         os.replace(temp, target)
     except BaseException:
         # BaseException too: an interrupt mid-write must not leave a stray temp file.

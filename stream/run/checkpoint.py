@@ -81,16 +81,26 @@ class Checkpoint:
 # the file
 # ---------------------------------------------------------------------------------------
 
-def write_checkpoint(path: str | os.PathLike, meta: dict, arrays: dict[str, np.ndarray]) -> int:
+def write_checkpoint(path: str | os.PathLike, meta: dict, arrays: dict[str, np.ndarray],
+                     guard: Callable[[], None] | None = None) -> int:
     """Write a checkpoint atomically, keeping the one it replaces as ``path.prev``.
 
     Returns the size of the new file in bytes. ``meta`` gets ``checkpoint_version``.
+    ``guard`` (a fencing check) is called before the old file is set aside and again
+    just before the new one takes its name; when it raises, no file changes.
     """
     path = os.fspath(path)
     meta = {"checkpoint_version": CHECKPOINT_VERSION, **meta}
-    if os.path.exists(path):
-        os.replace(path, path + PREVIOUS_SUFFIX)
-    write_model_file(path, CHECKPOINT_KIND, meta, arrays)
+    if guard is not None:
+        guard()
+
+    def set_old_aside() -> None:     # the new file is on disk; it takes the name next
+        if guard is not None:
+            guard()
+        if os.path.exists(path):
+            os.replace(path, path + PREVIOUS_SUFFIX)
+
+    write_model_file(path, CHECKPOINT_KIND, meta, arrays, set_old_aside)
     return os.path.getsize(path)
 
 

@@ -43,6 +43,7 @@ from stream.errors import (
     RecordError,
     SapwoodError,
     SchemaError,
+    SupersededError,
 )
 
 from .atomic import write_atomic
@@ -159,6 +160,8 @@ class LearnRun(StopsOnSignal):
                                       if self.checkpoint else None)
         if hasattr(self.source, "on_quiet"):   # a live broker feed
             self.source.on_quiet = self._on_quiet
+        if self.checkpoint is not None:
+            self.checkpoint.guard = getattr(self.source, "fence_check", None)
         if self.delayed is not None:
             from .reading import batch_rows_for
 
@@ -288,6 +291,8 @@ class LearnRun(StopsOnSignal):
         """Run ``write``; a failure becomes a message instead of losing the summary."""
         try:
             write()
+        except SupersededError:
+            raise                       # a later learner owns the outputs: write nothing
         except (OSError, ValueError, SapwoodError) as exc:  # UnicodeError is a ValueError
             return [f"could not write the {what} {path!r}: {exc}"]
         return []

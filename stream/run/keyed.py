@@ -425,6 +425,7 @@ class KeyedRun(StopsOnSignal):
             run.checkpoint = RunCheckpoint(dataclasses.replace(run.job, checkpoint_path=path),
                                            self.warn)
         run.checkpoint.path = path
+        run.checkpoint.guard = getattr(self.source, "fence_check", None)
 
     def _evict(self, state: KeyState) -> None:
         """Save ``state``'s key and drop it from memory."""
@@ -496,7 +497,8 @@ class KeyedRun(StopsOnSignal):
                      for s in self.keys.values()},
         }
         write_atomic(os.path.join(self.state_dir, MANIFEST_NAME),
-                     json.dumps(manifest, indent=1) + "\n")
+                     json.dumps(manifest, indent=1) + "\n",
+                     getattr(self.source, "fence_check", None))
         for state in self.keys.values():
             if state.saved_gen and state.saved_gen != state.gen:
                 _remove(self._state_path(state, state.saved_gen))

@@ -95,7 +95,8 @@ class _Layout:
 
 
 def write_model_file(path: str | os.PathLike, kind: str, meta: dict,
-                     arrays: dict[str, np.ndarray]) -> None:
+                     arrays: dict[str, np.ndarray],
+                     before_replace: Callable[[], None] | None = None) -> None:
     """Write a learner's state to ``path`` atomically.
 
     Parameters
@@ -110,6 +111,9 @@ def write_model_file(path: str | os.PathLike, kind: str, meta: dict,
     arrays
         Name -> plain numpy array (or numpy scalar, stored 0-d) of a bool, integer,
         float or complex dtype.
+    before_replace
+        Called just before the new file replaces ``path`` (see
+        :func:`stream.run.atomic.write_atomic`).
 
     Raises
     ------
@@ -140,7 +144,7 @@ def write_model_file(path: str | os.PathLike, kind: str, meta: dict,
                           allow_nan=False, separators=(",", ":")).encode("utf-8")
     header = (f"version {FORMAT_VERSION} manifest {len(manifest)} "
               f"sha256 {hashlib.sha256(manifest).hexdigest()}\n").encode("ascii")
-    with atomic_writer(path, "wb") as out:
+    with atomic_writer(path, "wb", before_replace) as out:
         out.write(MAGIC)
         out.write(header)
         out.write(manifest)

@@ -79,6 +79,9 @@ class RunCheckpoint:
         self.last_at = 0.0
         self.since = 0          # records since the last checkpoint
         self.uncommitted = 0    # records the source has not acknowledged
+        # the source's fencing check, run before a checkpoint file changes (a learner
+        # superseded by a later one must not write; connectors.fencing)
+        self.guard: Callable[[], None] | None = None
 
     def resumed_outputs(self) -> dict | None:
         """Lengths of the appended outputs at the checkpoint resumed from, else None."""
@@ -124,7 +127,7 @@ class RunCheckpoint:
             labels_meta, label_arrays = run.delayed.state()
             meta.update(labels_meta)
             arrays.update(label_arrays)
-        size = write_checkpoint(self.path, meta, arrays)
+        size = write_checkpoint(self.path, meta, arrays, self.guard)
         if self.written == 0 and self.job.snapshot_dir:
             note_checkpointed(self.job.snapshot_dir)
         self.written += 1

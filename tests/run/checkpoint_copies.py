@@ -15,8 +15,8 @@ def keep_every_checkpoint(monkeypatch, folder: Path) -> list[str]:
     copies: list[str] = []
     real = ck.write_checkpoint
 
-    def keep_each(path, meta, arrays):
-        size = real(path, meta, arrays)
+    def keep_each(path, meta, arrays, guard=None):
+        size = real(path, meta, arrays, guard)
         copies.append(shutil.copy(path, folder / f"ckpt-{len(copies):03d}"))
         return size
 

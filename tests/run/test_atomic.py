@@ -152,3 +152,45 @@ def test_permissions_new_file_follows_umask_existing_file_kept(tmp_path):
         assert stat.S_IMODE(os.stat(existing).st_mode) == 0o604
     finally:
         os.umask(old_mask)
+
+
+def test_a_fencing_check_that_refuses_leaves_the_old_file(tmp_path):
+    """before_replace runs after the new content is on disk and before the rename; when
+    it raises, the target keeps its old content and no temporary file is left."""
+    target = tmp_path / "state.json"
+    write_atomic(target, b"old")
+
+    def superseded():
+        raise RuntimeError("a later learner has started")
+
+    with pytest.raises(RuntimeError, match="later learner"):
+        write_atomic(target, b"new", before_replace=superseded)
+    assert target.read_bytes() == b"old" and _names(tmp_path) == ["state.json"]
+    calls = []
+    write_atomic(target, b"new", before_replace=lambda: calls.append(target.read_bytes()))
+    assert calls == [b"old"] and target.read_bytes() == b"new"
+
+
+def test_a_checkpoint_whose_guard_refuses_changes_no_file(tmp_path):
+    """write_checkpoint checks before setting the old checkpoint aside and again before
+    the rename: a refusal at either point leaves the checkpoint and its .prev as they
+    were."""
+    import numpy as np
+
+    from stream.run.checkpoint import write_checkpoint
+
+    path = tmp_path / "run.ckpt"
+    write_checkpoint(path, {"n": 1}, {"a": np.arange(3)})
+    write_checkpoint(path, {"n": 2}, {"a": np.arange(4)})
+    before = {name: (tmp_path / name).read_bytes() for name in _names(tmp_path)}
+    for refuse_at in (1, 2):
+        calls = []
+
+        def guard():
+            calls.append(1)
+            if len(calls) == refuse_at:
+                raise RuntimeError("superseded")
+
+        with pytest.raises(RuntimeError):
+            write_checkpoint(path, {"n": 3}, {"a": np.arange(5)}, guard)
+        assert {name: (tmp_path / name).read_bytes() for name in _names(tmp_path)} == before

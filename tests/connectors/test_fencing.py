@@ -1,0 +1,198 @@
+"""Fencing of Redis stream learners against a real redis-server on loopback.
+
+A learner that was cut off and replaced must not acknowledge or checkpoint after its
+replacement started (the fencing-token scheme of Kleppmann, "How to do distributed
+locking", 2016: the store checks the token). The checks use the documented atomicity
+of Redis scripts (EVAL: "no other script or Redis command will be executed while a
+script is executing") and the pending-entries semantics of XREADGROUP/XPENDING.
+"""
+
+from __future__ import annotations
+
+import json
+import signal
+import subprocess
+import sys
+import time
+
+import pytest
+
+from connectors.brokers import open_broker
+from connectors.local_brokers import REDIS_SERVER, LocalRedis
+from stream.errors import EXIT_SUPERSEDED, SupersededError
+
+pytestmark = pytest.mark.skipif(
+    REDIS_SERVER is None,
+    reason="redis-server is not installed (bash .ci/brokers.sh install adds it)")
+
+
+@pytest.fixture(scope="module")
+def server(tmp_path_factory):
+    s = LocalRedis(tmp_path_factory.mktemp("redis"), durable=False).start()
+    yield s
+    s.stop()
+
+
+_names = iter(range(1, 10**6))
+
+
+@pytest.fixture
+def stream(server):
+    return f"fenced{next(_names)}"
+
+
+def add(server, stream, n, start=0):
+    pipe = server.client().pipeline(transaction=False)
+    for i in range(start, start + n):
+        temp = 15 + (i * 7919) % 200 / 10.0
+        pipe.xadd(stream, {"n": str(i), "temp": f"{temp:.1f}",
+                           "hot": "yes" if temp > 22 else "no"})
+    pipe.execute()
+
+
+def pending(server, stream):
+    return server.client().xpending(stream, "sapwood")["pending"]
+
+
+def test_a_replaced_learner_can_neither_acknowledge_nor_pass_its_checks(server, stream):
+    add(server, stream, 300)
+    old = open_broker(server.url(stream=stream), 100, retry=5)
+    batches = old.batches()
+    first = next(batches)
+    old.commit(first.position)            # its own epoch: acknowledged
+    assert pending(server, stream) == 0
+    second = next(batches)                 # handed out, not acknowledged
+    new = open_broker(server.url(stream=stream, idle_exit=0), 1000, retry=5)
+    got = []
+    for batch in new.batches():
+        got += batch.frame["n"].astype(int).tolist()
+        new.commit(batch.position)
+    new.close()
+    # the replacement read what the old one held unacknowledged, then the rest
+    assert got == list(range(100, 300))
+    with pytest.raises(SupersededError, match="another learner of this stream"):
+        old.commit(second.position)
+    with pytest.raises(SupersededError):
+        old.fence_check()
+    old.close()
+    assert pending(server, stream) == 0
+    assert old.fence.epoch + 1 == new.fence.epoch
+
+
+def test_entries_a_replaced_learner_reads_are_read_again_in_order(server, stream):
+    """The old learner, still running under the same consumer name, takes new entries
+    into the shared pending list; the replacement notices the gap before its next new
+    entries and reads them all from the pending list, in id order."""
+    add(server, stream, 100)
+    old = open_broker(server.url(stream=stream), 50, retry=5)
+    old_batches = old.batches()
+    next(old_batches)
+    new = open_broker(server.url(stream=stream, idle_exit=1), 50, retry=5)
+    new_batches = new.batches()
+    got = []
+    while len(got) < 100:
+        got += next(new_batches).frame["n"].astype(int).tolist()
+    add(server, stream, 100, start=100)
+    next(old_batches)   # the superseded learner took new entries 100-149 (and, seeing
+    # pending entries before them, went back to read 50-99 from the pending list)
+    assert server.client().xinfo_groups(stream)[0]["entries-read"] == 150
+    for batch in new_batches:
+        got += batch.frame["n"].astype(int).tolist()
+        new.commit(batch.position)
+    assert got == list(range(200))
+    assert pending(server, stream) == 0
+    old.close()
+    new.close()
+
+
+def test_fencing_can_be_turned_off(server, stream):
+    add(server, stream, 10)
+    src = open_broker(server.url(stream=stream, fence="false", idle_exit=0), 100, retry=5)
+    for batch in src.batches():
+        src.commit(batch.position)
+    src.close()
+    assert src.fence is None and pending(server, stream) == 0
+    assert not server.client().keys(f"*{stream}*sapwood-fence*")
+
+
+def test_a_learner_cut_off_and_replaced_writes_nothing_after_its_replacement(
+        server, stream, tmp_path):
+    """Real processes: learner 1 is frozen (SIGSTOP, as a cut-off node would be) while it
+    waits for entries; more entries arrive; learner 2, the same command, resumes from
+    the checkpoint, learns them and is stopped. Thawed and stopped, learner 1 must exit
+    with code 4 and the superseded message, leaving the checkpoint, the summary and the
+    predictions as learner 2 wrote them; those equal an uninterrupted run's. Without
+    fencing learner 1 would write its older state over the checkpoint as it stops."""
+    import redis
+
+    from stream.child_env import same_code_env
+
+    env = same_code_env()
+    add(server, stream, 3000)
+    reference_db = redis.Redis(port=server.port, db=1, protocol=2)
+    pipe = reference_db.pipeline(transaction=False)
+    for entry_id, fields in server.client().xrange(stream):
+        pipe.xadd(stream, fields)
+    pipe.execute()
+
+    def command(url, out):
+        return [sys.executable, "-m", "stream.cli", "learn", url, "--target", "hot",
+                "--batch-rows", "500", "--checkpoint", str(out / "run.ckpt"),
+                "--checkpoint-every", "1000", "--predictions", str(out / "p.csv"),
+                "--summary", str(out / "s.json"), "-q"]
+
+    def wait_until_learned(n):
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline:
+            groups = server.client().xinfo_groups(stream)
+            if groups and groups[0]["entries-read"] == n and pending(server, stream) == 0:
+                return                  # learned, checkpointed, acknowledged
+            time.sleep(0.05)
+        raise AssertionError(f"{n} entries were not learned within 60 s")
+
+    run, ref = tmp_path / "run", tmp_path / "ref"
+    run.mkdir()
+    ref.mkdir()
+    url = server.url(stream=stream)
+    first = subprocess.Popen(command(url, run), env=env, stdout=subprocess.DEVNULL,
+                             stderr=subprocess.PIPE)
+    second = None
+    try:
+        wait_until_learned(3000)
+        first.send_signal(signal.SIGSTOP)       # frozen while it waits for entries
+        add(server, stream, 1000, start=3000)
+        second = subprocess.Popen(command(url, run), env=env, stdout=subprocess.DEVNULL,
+                                  stderr=subprocess.PIPE)
+        wait_until_learned(4000)
+        second.send_signal(signal.SIGTERM)
+        _, err2 = second.communicate(timeout=60)
+        assert second.returncode == 0, err2.decode()
+        written = {name: (run / name).read_bytes() for name in ("run.ckpt", "p.csv",
+                                                                "s.json")}
+        first.send_signal(signal.SIGCONT)
+        time.sleep(0.5)
+        first.send_signal(signal.SIGTERM)       # a stop writes a last checkpoint
+        _, err = first.communicate(timeout=60)
+    finally:
+        for proc in (first, second):
+            if proc is not None and proc.poll() is None:
+                proc.kill()
+                proc.wait()
+    assert first.returncode == EXIT_SUPERSEDED, err.decode()
+    assert "another learner of this stream has started" in err.decode()
+    assert {name: (run / name).read_bytes() for name in written} == written
+
+    add_reference = reference_db.pipeline(transaction=False)
+    for entry_id, fields in server.client().xrange(stream, min="(" + entry_id.decode()):
+        add_reference.xadd(stream, fields)
+    add_reference.execute()
+    done = subprocess.run(command(url.replace("/0?", "/1?") + "&idle_exit=0", ref),
+                          env=env, capture_output=True, timeout=120)
+    assert done.returncode == 0, done.stderr.decode()
+    assert (run / "p.csv").read_bytes() == (ref / "p.csv").read_bytes()
+    facts = json.loads((run / "s.json").read_text())
+    reference = json.loads((ref / "s.json").read_text())
+    for key in ("records", "learned", "accuracy"):
+        assert facts[key] == reference[key], key
+    assert facts["learned"] == 4000
+    assert pending(server, stream) == 0
