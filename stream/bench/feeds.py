@@ -181,10 +181,14 @@ def feeds_suite(bench: Bench) -> SuiteResult:
         with _running(LocalRedis(_folder(bench, "redis"), durable=False)) as server:
             bench.say(f"feeds: filling a Redis stream with {rows:,} entries")
             _fill_redis(server, "sea", csv_path)
-            for group, checkpoint in (("plain", False), ("durable", True)):
+            for group, checkpoint, fence in (("plain", False, True),
+                                             ("durable", True, True),
+                                             ("unfenced", False, False)):
                 bench.say(f"feeds: learning from the Redis stream, group {group}")
-                url = server.url(stream="sea", group=group, idle_exit=0)
-                result.rows.append(_row("Redis stream", checkpoint,
+                url = server.url(stream="sea", group=group, idle_exit=0,
+                                 **({} if fence else {"fence": "false"}))
+                feed = "Redis stream" if fence else "Redis stream, fence=false"
+                result.rows.append(_row(feed, checkpoint,
                                         _learn(bench, url, checkpoint, f"redis-{group}"),
                                         file_rate))
 
