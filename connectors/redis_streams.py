@@ -55,7 +55,7 @@ from typing import Any, Callable, Iterator, Sequence
 import numpy as np
 import pandas as pd
 
-from stream.errors import ConfigError
+from stream.errors import ConfigError, InputError
 
 from .base import RawBatch, Reject
 from .broker_payloads import (DEFAULT_LINGER, MAX_MESSAGE_BYTES, PAYLOAD_FORMATS, Backoff,
@@ -501,7 +501,15 @@ class RedisStreamSource:
                 owner = self._group if self._claim else f"{self._group}:{self._consumer}"
                 self.fence = Fence(self._stream, owner, self.name,
                                    lambda *command: self._call(*command)[1], self.cluster)
-                self.fence.take()
+                try:
+                    self.fence.take()
+                except InputError as exc:
+                    if "no permissions" not in str(exc) and "NOPERM" not in str(exc):
+                        raise
+                    raise input_error(self.name, f"{exc}; fencing runs INCR, GET and EVAL "
+                                                 f"on key {self.fence.key!r}: allow them "
+                                                 "to this user, or add fence=false to the "
+                                                 "URL") from None
             claimed = self._claim_others() if self._claim else []
             if claimed:
                 yield RawBatch(pd.DataFrame(index=pd.RangeIndex(0)), self._stream,

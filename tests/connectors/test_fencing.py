@@ -196,3 +196,23 @@ def test_a_learner_cut_off_and_replaced_writes_nothing_after_its_replacement(
         assert facts[key] == reference[key], key
     assert facts["learned"] == 4000
     assert pending(server, stream) == 0
+
+
+def test_a_user_who_may_not_fence_is_told_how_to_go_on(server, stream):
+    """An ACL user without INCR (Redis ACL documentation: ACL SETUSER ... -incr) is
+    refused at start with the key and the way out; fence=false then reads."""
+    from stream.errors import InputError
+
+    add(server, stream, 5)
+    server.client().execute_command("ACL", "SETUSER", "nofence", "on", ">pw-7Q", "~*",
+                                    "&*", "+@all", "-incr")
+    url = server.url(userinfo="nofence:pw-7Q@", stream=stream, idle_exit=0)
+    src = open_broker(url, 100, retry=2)
+    with pytest.raises(InputError, match="add fence=false to the URL") as caught:
+        next(src.batches())
+    assert "sapwood-fence" in str(caught.value) and "pw-7Q" not in str(caught.value)
+    src.close()
+    src = open_broker(url + "&fence=false", 100, retry=2)
+    got = sum(len(b.frame) for b in src.batches())
+    src.close()
+    assert got == 5
