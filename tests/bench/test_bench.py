@@ -140,7 +140,8 @@ def test_feeds_suite_learns_every_record_from_each_feed(tmp_path):
     except ImportError:
         pass
     if REDIS_SERVER is not None:
-        expected += [("Redis stream", "none"), ("Redis stream", "every 10,000")]
+        expected += [("Redis stream", "none"), ("Redis stream", "every 10,000"),
+                     ("Redis stream, fence=false", "none")]
     if MOSQUITTO is not None:
         expected += [("MQTT topic", "none"), ("MQTT topic, 100 records per message", "none")]
     assert [(r["feed"], r["checkpoint"]) for r in feeds.rows] == expected

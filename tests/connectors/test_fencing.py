@@ -18,8 +18,9 @@ import time
 import pytest
 
 from connectors.brokers import open_broker
-from connectors.local_brokers import REDIS_SERVER, LocalRedis
+from connectors.local_brokers import REDIS_SERVER
 from stream.errors import EXIT_SUPERSEDED, SupersededError
+from tests.connectors.redis_records import add_hot_records, learn_numbers
 
 pytestmark = pytest.mark.skipif(
     REDIS_SERVER is None,
@@ -27,10 +28,8 @@ pytestmark = pytest.mark.skipif(
 
 
 @pytest.fixture(scope="module")
-def server(tmp_path_factory):
-    s = LocalRedis(tmp_path_factory.mktemp("redis"), durable=False).start()
-    yield s
-    s.stop()
+def server(plain_redis):
+    return plain_redis
 
 
 _names = iter(range(1, 10**6))
@@ -42,12 +41,7 @@ def stream(server):
 
 
 def add(server, stream, n, start=0):
-    pipe = server.client().pipeline(transaction=False)
-    for i in range(start, start + n):
-        temp = 15 + (i * 7919) % 200 / 10.0
-        pipe.xadd(stream, {"n": str(i), "temp": f"{temp:.1f}",
-                           "hot": "yes" if temp > 22 else "no"})
-    pipe.execute()
+    add_hot_records(server.client(), stream, n, start)
 
 
 def pending(server, stream):
@@ -63,11 +57,7 @@ def test_a_replaced_learner_can_neither_acknowledge_nor_pass_its_checks(server, 
     assert pending(server, stream) == 0
     second = next(batches)                 # handed out, not acknowledged
     new = open_broker(server.url(stream=stream, idle_exit=0), 1000, retry=5)
-    got = []
-    for batch in new.batches():
-        got += batch.frame["n"].astype(int).tolist()
-        new.commit(batch.position)
-    new.close()
+    got = learn_numbers(new)
     # the replacement read what the old one held unacknowledged, then the rest
     assert got == list(range(100, 300))
     with pytest.raises(SupersededError, match="another learner of this stream"):

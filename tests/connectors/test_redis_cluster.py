@@ -18,10 +18,11 @@ import time
 import pytest
 
 from connectors.brokers import open_broker
-from connectors.local_brokers import REDIS_SERVER, LocalRedis, LocalRedisCluster
+from connectors.local_brokers import REDIS_SERVER, LocalRedisCluster
 from connectors.redis_clients import hash_tag, same_slot_key
 from connectors.sinks import open_prediction_sink
 from stream.errors import ConfigError
+from tests.connectors.redis_records import add_hot_records, learn_numbers
 
 pytestmark = pytest.mark.skipif(
     REDIS_SERVER is None,
@@ -36,10 +37,8 @@ def cluster(tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
-def single(tmp_path_factory):
-    s = LocalRedis(tmp_path_factory.mktemp("single"), durable=False).start()
-    yield s
-    s.stop()
+def single(plain_redis):
+    return plain_redis
 
 
 _names = iter(range(1, 10**6))
@@ -53,13 +52,7 @@ def stream_on_other_node(cluster: LocalRedisCluster) -> str:
             return name
 
 
-def fill(client, stream: str, n: int) -> None:
-    pipe = client.pipeline(transaction=False)
-    for i in range(n):
-        temp = 15 + (i * 7919) % 200 / 10.0
-        pipe.xadd(stream, {"n": str(i), "temp": f"{temp:.1f}",
-                           "hot": "yes" if temp > 22 else "no"})
-    pipe.execute()
+fill = add_hot_records
 
 
 def cluster_client(cluster):
@@ -76,11 +69,7 @@ def test_a_stream_on_another_node_is_read_through_any_node(cluster):
     rc = cluster_client(cluster)
     fill(rc, stream, 500)
     src = open_broker(cluster.url(stream=stream, idle_exit=0), 64, retry=5)
-    seen = []
-    for batch in src.batches():
-        seen += batch.frame["n"].astype(int).tolist()
-        src.commit(batch.position)
-    src.close()
+    seen = learn_numbers(src)
     assert src.cluster
     assert seen == list(range(500))
     assert pending(rc, stream) == 0
