@@ -52,7 +52,7 @@ def test_rules_table_exact():
 | R4 | `door = open` and `door_open_min > 14.5` and `ambient_c > 27.9 *` | `yes` | 93.1% | 20.9% | 2,513 |
 | R2 | `door = closed *+` | `no` | 96.8% | 77.5% | 9,300 |
 
-\* also records where the field is missing;  + also values not seen when the split was made
+\\* also records where the field is missing;  + also values not seen when the split was made
 """
 
 
