@@ -318,8 +318,12 @@ class RedisStreamSource:
             try:
                 return node.execute_command(*command)
             except MovedError:           # the slot moved: read the cluster's map again
+                if not self.cluster:
+                    raise
                 self._client.nodes_manager.initialize()
             except AskError as exc:      # the slot is migrating and the key has left
+                if not self.cluster:
+                    raise
                 target = _raw_replies(self._node(f"{exc.host}:{exc.port}"))
                 pipe = target.pipeline(transaction=False)
                 pipe.execute_command("ASKING")
