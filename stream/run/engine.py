@@ -82,6 +82,8 @@ class LearnRun(StopsOnSignal):
         self.clock = clock
         self.wall = wall
         self.progress = progress
+        # a fenced source's check (connectors.fencing): before each batch's outputs
+        self._fence_check: Callable[[], None] | None = None
         self.warn = warn or (lambda text: print(f"sapwood: warning: {text}",
                                                 file=sys.stderr, flush=True))
         self.schema: Schema | None = schema if schema is not None else \
@@ -160,8 +162,9 @@ class LearnRun(StopsOnSignal):
                                       if self.checkpoint else None)
         if hasattr(self.source, "on_quiet"):   # a live broker feed
             self.source.on_quiet = self._on_quiet
+        self._fence_check = getattr(self.source, "fence_check", None)
         if self.checkpoint is not None:
-            self.checkpoint.guard = getattr(self.source, "fence_check", None)
+            self.checkpoint.guard = self._fence_check
         if self.delayed is not None:
             from .reading import batch_rows_for
 
@@ -403,6 +406,8 @@ class LearnRun(StopsOnSignal):
             self.checkpoint.write(self)
 
     def _consume(self, raw: RawBatch, prepared: PreparedColumns | None = None) -> None:
+        if self._fence_check is not None:
+            self._fence_check()     # superseded: write no output of this batch
         batch = self.encode(raw, labels_optional=self.delayed is not None, prepared=prepared)
         if self.delayed is not None:
             self.delayed.consume(batch)

@@ -325,6 +325,9 @@ class KeyedRun(StopsOnSignal):
         if not self.window:
             return
         window, self.window, self.window_rows = self.window, [], 0
+        fence_check = getattr(self.source, "fence_check", None)
+        if fence_check is not None:
+            fence_check()           # superseded: write no output of this window
         first = window[0][0]
         frame = window[0][1] if len(window) == 1 else pd.concat(
             [w[1] for w in window], ignore_index=True)

@@ -160,9 +160,13 @@ def test_a_learner_cut_off_and_replaced_writes_nothing_after_its_replacement(
         written = {name: (run / name).read_bytes() for name in ("run.ckpt", "p.csv",
                                                                 "s.json")}
         first.send_signal(signal.SIGCONT)
-        time.sleep(0.5)
-        first.send_signal(signal.SIGTERM)       # a stop writes a last checkpoint
-        _, err = first.communicate(timeout=60)
+        try:
+            # a read it had sent before it froze may have been answered with new entries
+            # meanwhile: it finds itself superseded before writing their outputs
+            _, err = first.communicate(timeout=3)
+        except subprocess.TimeoutExpired:
+            first.send_signal(signal.SIGTERM)   # a stop writes a last checkpoint
+            _, err = first.communicate(timeout=60)
     finally:
         for proc in (first, second):
             if proc is not None and proc.poll() is None:
@@ -206,3 +210,34 @@ def test_a_user_who_may_not_fence_is_told_how_to_go_on(server, stream):
     got = sum(len(b.frame) for b in src.batches())
     src.close()
     assert got == 5
+
+
+def test_a_superseded_run_writes_no_output_of_its_next_batch(server, stream, tmp_path):
+    """Once a later learner took the epoch, the run checks before each batch's outputs:
+    the predictions hold exactly the batches learned before (the epoch is taken from
+    the progress callback after the third batch, so the point is exact; no checkpoint
+    falls due before the end, so without the check the run would write all 1,000
+    predictions and be stopped only by its last checkpoint)."""
+    from stream.run.engine import LearnRun
+    from stream.run.job import LearnJob
+
+    add(server, stream, 1000)
+    predictions = tmp_path / "p.csv"
+    batches = []
+
+    def after_batch(facts):
+        batches.append(facts)
+        if len(batches) == 3:      # a replacement starts: it takes the next epoch
+            key = next(k for k in server.client().keys(f"*{stream}*sapwood-fence*"))
+            server.client().incr(key)
+
+    job = LearnJob(sources=[server.url(stream=stream, idle_exit=0)], target="hot",
+                   batch_rows=100, predictions_path=str(predictions),
+                   checkpoint_path=str(tmp_path / "run.ckpt"), checkpoint_every=100_000,
+                   checkpoint_seconds=0)
+    with pytest.raises(SupersededError):
+        LearnRun(job, progress=after_batch).run()
+    lines = predictions.read_text().splitlines()
+    assert len(lines) == 1 + 300           # the header and the three batches
+    assert not (tmp_path / "run.ckpt").exists()
+    assert pending(server, stream) >= 400   # read, never acknowledged
