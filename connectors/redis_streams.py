@@ -303,7 +303,8 @@ class RedisStreamSource:
     def _stream_node(self):
         """The plain client of the node serving the stream (the one server's client when
         there is no cluster), its replies kept raw."""
-        node = _raw_replies(node_of(self._client, self._stream))
+        node = _raw_replies(node_of(self._client, self._stream) if self.cluster
+                            else self._client)
         self._track_node(node)
         return node
 

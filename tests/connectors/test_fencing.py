@@ -4,7 +4,8 @@ A learner that was cut off and replaced must not acknowledge or checkpoint after
 replacement started (the fencing-token scheme of Kleppmann, "How to do distributed
 locking", 2016: the store checks the token). The checks use the documented atomicity
 of Redis scripts (EVAL: "no other script or Redis command will be executed while a
-script is executing") and the pending-entries semantics of XREADGROUP/XPENDING.
+script is executing", quoted from memory) and the pending-entries semantics of
+XREADGROUP/XPENDING.
 """
 
 from __future__ import annotations
