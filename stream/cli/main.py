@@ -114,12 +114,14 @@ def _register_commands() -> None:
     """Commands that live in their own modules (operator views, the benchmark)."""
     from stream.bench.command import command as bench_command
 
+    from .grove import grove
     from .keys import keys
     from .learn import learn
     from .views import COMMANDS as view_commands
 
     cli.add_command(learn, "learn")
     cli.add_command(keys, "keys")
+    cli.add_command(grove, "grove")
     for name, command in view_commands.items():
         cli.add_command(command, name)
     cli.add_command(bench_command, "bench")
