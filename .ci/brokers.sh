@@ -1,6 +1,7 @@
 #!/usr/bin/env bash
 # The message brokers sapwood's broker connectors are tested against: mosquitto (MQTT)
-# and redis-server (Redis Streams), both Debian packages.
+# and redis-server (Redis Streams), both Debian packages; and iproute2 (the ip command),
+# with which the grove's tests make the network namespaces their Ray nodes run in.
 #
 #   bash .ci/brokers.sh install   # apt-get install them (once per machine; no-op if present)
 #   bash .ci/brokers.sh start     # start both on loopback ports, print their URLs
@@ -22,15 +23,16 @@ find_mosquitto() {
 }
 
 install() {
-    if [ -n "$(find_mosquitto)" ] && command -v redis-server >/dev/null; then
-        echo "mosquitto and redis-server are installed"
+    if [ -n "$(find_mosquitto)" ] && command -v redis-server >/dev/null \
+            && command -v ip >/dev/null; then
+        echo "mosquitto, redis-server and ip are installed"
         return
     fi
     local sudo=""
     [ "$(id -u)" -eq 0 ] || sudo="sudo"
     $sudo apt-get update -qq
     DEBIAN_FRONTEND=noninteractive $sudo apt-get install -y -qq --no-install-recommends \
-        mosquitto redis-server >/dev/null
+        mosquitto redis-server iproute2 >/dev/null
     echo "installed: $("$(find_mosquitto)" -h 2>/dev/null | head -n1); $(redis-server --version)"
 }
 

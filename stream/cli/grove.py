@@ -96,13 +96,16 @@ def _check_learn_args(plan, home: str) -> None:
 @grove.command("status")
 @click.argument("home", metavar="FOLDER", type=click.Path(file_okay=False))
 @click.option("--json", "as_json", is_flag=True, help="One object per learner, as JSON.")
+@click.option("--folder-only", is_flag=True,
+              help="Only what the shared folder says; do not ask Ray (e.g. while the "
+                   "cluster is down).")
 @ADDRESS
-def status_command(home, as_json, address) -> None:
+def status_command(home, as_json, folder_only, address) -> None:
     """Which learner owns which stream and keys, on which node, records learned at the
     last checkpoint, when that was, and restarts."""
     from stream.grove import control
 
-    plan, rows, note = control.status(home, address)
+    plan, rows, note = control.status(home, address, ask_ray=not folder_only)
     if as_json:
         echo(json.dumps({"grove": plan.name, "state": plan.state, "learners": rows},
                         indent=1))

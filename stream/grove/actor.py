@@ -60,8 +60,7 @@ class GroveLearner:
         plan = read_plan(home)
         self.plan = plan
         self.learner = plan.learners[index]
-        self.folder = os.path.join(home, self.learner.folder)
-        os.makedirs(os.path.join(self.folder, "out"), exist_ok=True)
+        self.folder = plan.make_folder(home, self.learner)
         self._lock = threading.Lock()
         self._stopping = False
         self._child: subprocess.Popen | None = None

@@ -106,13 +106,16 @@ def learner_figures(home: str, learner: LearnerPlan) -> dict:
     return figures
 
 
-def status(home: str, address: str | None) -> tuple[GrovePlan, list[dict], str | None]:
-    """(plan, one row per learner, a note when Ray could not be asked). Each row holds
-    the folder's figures and ``alive``: True (the actor answered), False (no such actor
-    or no answer within :data:`REPORT_TIMEOUT`), or None (Ray not asked)."""
+def status(home: str, address: str | None,
+           ask_ray: bool = True) -> tuple[GrovePlan, list[dict], str | None]:
+    """(plan, one row per learner, a note when Ray was not asked). Each row holds the
+    folder's figures and ``alive``: True (the actor answered), False (no such actor or no
+    answer within :data:`REPORT_TIMEOUT`), or None (Ray not asked)."""
     plan = read_plan(home)
     rows = [learner_figures(home, learner) for learner in plan.learners]
     try:
+        if not ask_ray:
+            raise SapwoodError("--folder-only")
         connect(address)
     except SapwoodError as exc:
         for row in rows:

@@ -98,6 +98,12 @@ class GrovePlan:
                 "--quarantine", os.path.join(folder, "quarantine.jsonl"),
                 "--quiet", *self.learn_args]
 
+    def make_folder(self, home: str, learner: LearnerPlan) -> str:
+        """Make ``learner``'s folder (and its output folder) under ``home``; its path."""
+        folder = os.path.join(home, learner.folder)
+        os.makedirs(os.path.join(folder, "out"), exist_ok=True)
+        return folder
+
     def to_dict(self) -> dict:
         return {"grove_version": PLAN_VERSION, "name": self.name, "redis": self.redis,
                 "target": self.target, "by": self.by, "learn_args": self.learn_args,
@@ -167,7 +173,8 @@ def plan_path(home: str) -> str:
 
 
 def write_plan(home: str, plan: GrovePlan) -> None:
-    """Write ``home/grove.json`` atomically."""
+    """Write ``home/grove.json`` atomically (making ``home`` if need be)."""
+    os.makedirs(home, exist_ok=True)
     write_atomic(plan_path(home), json.dumps(plan.to_dict(), indent=1) + "\n")
 
 

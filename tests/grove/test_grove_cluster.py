@@ -105,7 +105,7 @@ def reference(entries, tmp_path_factory):
         home = folder / "home"
         children = []
         for learner in plan.learners:
-            (home / learner.folder / "out").mkdir(parents=True)
+            plan.make_folder(str(home), learner)
             children.append(subprocess.Popen(
                 [sys.executable, "-m", "stream.cli", *plan.learn_command(str(home), learner)]))
         write_plan(str(home), plan)
