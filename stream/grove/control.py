@@ -18,6 +18,8 @@ from stream.errors import ConfigError, SapwoodError
 
 from .plan import RAY_NAMESPACE, GrovePlan, LearnerPlan, plan_path, read_plan, write_plan
 
+START_TIMEOUT = 120.0
+"""Seconds ``start`` waits for every learner to be placed and answer."""
 REPORT_TIMEOUT = 10.0
 """Seconds to wait for one actor's answer in ``status``."""
 
@@ -82,7 +84,14 @@ def start(home: str, plan: GrovePlan, address: str | None,
             max_restarts=-1, num_cpus=plan.cpus_per_learner,
             scheduling_strategy="SPREAD").remote(home, index))
         say(f"started {learner.name} for stream {learner.stream!r}")
-    return ray.get([h.report.remote() for h in handles])
+    try:
+        return ray.get([h.report.remote() for h in handles], timeout=START_TIMEOUT)
+    except ray.exceptions.GetTimeoutError:
+        raise SapwoodError(
+            f"the learners were not all placed within {START_TIMEOUT:.0f} s (does the "
+            f"cluster have {plan.cpus_per_learner:g} CPUs free per learner? see "
+            f"--cpus-per-learner); Ray keeps trying: `sapwood grove status {home}`, or "
+            f"`sapwood grove stop {home}`") from None
 
 
 def learner_figures(home: str, learner: LearnerPlan) -> dict:
