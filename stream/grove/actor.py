@@ -82,6 +82,11 @@ class GroveLearner:
                          daemon=True).start()
 
     def _save(self) -> None:
+        """Write ``actor.json``, unless a later start of this learner has written it: an
+        actor on a node that was cut off may still run when its replacement has started,
+        and the record is the replacement's."""
+        if int(read_state(self.folder).get("starts", 0)) > self.state["starts"]:
+            return
         write_atomic(os.path.join(self.folder, STATE_NAME),
                      json.dumps(self.state, indent=1) + "\n")
 
