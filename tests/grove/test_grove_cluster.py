@@ -180,8 +180,9 @@ class Feeder:
 
 
 def run_with_failure(folder: Path, entries: dict, reference: Path, failure) -> list[dict]:
-    """Start the cluster and a grove, feed 40% of the records, apply ``failure`` while
-    the rest arrive, wait until all are learned, stop the grove and compare."""
+    """Start the cluster and a grove, feed 40% of the records, apply ``failure`` (given
+    the cluster, where the learners are and a function that starts the grove) while the
+    rest arrive, wait until all are learned, stop the grove and compare."""
     nodes = TwoNodes(folder)
     try:
         nodes.start()
@@ -191,16 +192,20 @@ def run_with_failure(folder: Path, entries: dict, reference: Path, failure) -> l
         for stream, rows in first.items():
             add(client, stream, rows)
         home = folder / "grove"
-        nodes.sapwood("grove", "start", str(home), *STREAMS, "--redis",
-                      nodes.redis_for_learners, "--target", "class", "--by", "car",
-                      "--learn-args", LEARN_ARGS, "--address", nodes.ray_address)
+
+        def start_grove() -> None:
+            nodes.sapwood("grove", "start", str(home), *STREAMS, "--redis",
+                          nodes.redis_for_learners, "--target", "class", "--by", "car",
+                          "--learn-args", LEARN_ARGS, "--address", nodes.ray_address)
+
+        start_grove()
         placed = wait_learned(home, {s: len(r) for s, r in first.items()}, 120)
         on_worker = [r for r in placed if r["node_ip"] == nodes.worker_ip]
         assert on_worker, f"the grove left the worker node empty: {placed}"
         feeder = Feeder(client, rest)
-        failure(nodes, placed)
+        failure(nodes, placed, start_grove)
         feeder.join()
-        rows = wait_learned(home, {s: len(r) for s, r in entries.items()}, 300)
+        wait_learned(home, {s: len(r) for s, r in entries.items()}, 300)
         status = nodes.sapwood("grove", "status", str(home), "--json", "--address",
                                nodes.ray_address)
         live = json.loads(status.stdout)["learners"]
@@ -216,23 +221,38 @@ def run_with_failure(folder: Path, entries: dict, reference: Path, failure) -> l
     return [learner_figures(str(home), learner) for learner in plan.learners]
 
 
-def test_a_killed_learner_process_comes_back_and_misses_nothing(entries, reference,
-                                                                  tmp_path):
+def test_a_killed_learner_process_comes_back_and_a_restarted_grove_resumes(
+        entries, reference, tmp_path):
+    # one actor process killed; once Ray has brought it back, the whole grove stopped and
+    # started again with the same command while records keep arriving
     victim: dict = {}
 
-    def kill_one_actor(nodes: TwoNodes, placed: list[dict]) -> None:
+    def kill_one_actor_then_restart_the_grove(nodes: TwoNodes, placed: list[dict],
+                                              start_grove) -> None:
         victim.update(next(r for r in placed if r["node_ip"] == nodes.worker_ip))
         os.kill(victim["pid"], signal.SIGKILL)
+        home = tmp_path / "grove"
+        plan = read_plan(str(home))
+        learner = next(x for x in plan.learners if x.name == victim["learner"])
+        deadline = time.monotonic() + 60
+        while learner_figures(str(home), learner).get("starts") != 2:
+            assert time.monotonic() < deadline, "Ray did not bring the learner back"
+            time.sleep(0.2)
+        nodes.sapwood("grove", "stop", str(home), "--address", nodes.ray_address)
+        assert read_plan(str(home)).state == "stopped"
+        start_grove()
 
-    after = run_with_failure(tmp_path, entries, reference, kill_one_actor)
+    after = run_with_failure(tmp_path, entries, reference,
+                             kill_one_actor_then_restart_the_grove)
     again = next(r for r in after if r["learner"] == victim["learner"])
-    assert again["starts"] == 2 and again["pid"] != victim["pid"]
+    assert again["starts"] == 3 and again["pid"] != victim["pid"]
+    assert all(r["status"] == "stopped" and r["child_exit"] == 0 for r in after), after
 
 
 def test_a_lost_node_moves_its_learners_and_misses_nothing(entries, reference, tmp_path):
     moved: dict[str, str] = {}
 
-    def kill_worker_node(nodes: TwoNodes, placed: list[dict]) -> None:
+    def kill_worker_node(nodes: TwoNodes, placed: list[dict], _start) -> None:
         moved.update((r["learner"], r["node_ip"]) for r in placed
                      if r["node_ip"] == nodes.worker_ip)
         assert nodes.kill_node(nodes.worker) > 0
@@ -246,7 +266,7 @@ def test_a_lost_node_moves_its_learners_and_misses_nothing(entries, reference, t
 @pytest.mark.parametrize("seconds", [45, 90])
 def test_a_cut_worker_link_misses_and_doubles_nothing(entries, reference, tmp_path,
                                                       seconds):
-    def cut_link(nodes: TwoNodes, placed: list[dict]) -> None:
+    def cut_link(nodes: TwoNodes, placed: list[dict], _start) -> None:
         nodes.cut()
         time.sleep(seconds)
         nodes.restore()
