@@ -150,7 +150,14 @@ class LearnJob:
                               "predict the class of concern)")
 
     def learner_settings(self, task: str):
-        """The settings the learner of ``task`` runs with."""
+        """The settings the learner of ``task`` runs with (worked out from ``options``
+        once per task and kept; a copy of the job keeps them too)."""
+        kept = self.__dict__.setdefault("_settings_kept", {})
+        if task not in kept:
+            kept[task] = self._settings_for(task)
+        return kept[task]
+
+    def _settings_for(self, task: str):
         from .tasks import classifier_settings, regressor_settings
 
         if self.settings is not None:

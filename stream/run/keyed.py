@@ -32,6 +32,7 @@ standard output or to a broker.
 from __future__ import annotations
 
 import collections
+import copy
 import dataclasses
 import hashlib
 import json
@@ -167,6 +168,7 @@ class KeyedRun(StopsOnSignal):
         self.warn = warn or (lambda text: print(f"sapwood: warning: {text}",
                                                 file=sys.stderr, flush=True))
         self.keys: dict[str, KeyState] = {}
+        self._key_template: LearnJob | None = None
         self.loaded: collections.OrderedDict[str, KeyState] = collections.OrderedDict()
         self.window: list[tuple[RawBatch, pd.DataFrame, np.ndarray]] = []
         self.window_rows = 0
@@ -386,18 +388,27 @@ class KeyedRun(StopsOnSignal):
         return run
 
     def _key_job(self, state: KeyState) -> LearnJob:
+        """The job of ``state``'s run: the keyed job's, checked once (the template), with
+        the key's own paths. The settings the options give are worked out once too: a
+        key's run asks for them when it starts, 1,000 times for 1,000 keys."""
         job, folder = self.job, state.folder
-        return dataclasses.replace(
-            job, by=None, schema_path=None, declared={}, fmt=None,
-            header=None, summary_path=None,
-            save_path=keyed_path(job.save_path, folder),
-            snapshot_dir=keyed_path(job.snapshot_dir, folder, directory=True),
-            metrics_path=keyed_path(job.metrics_path, folder),
-            events_path=keyed_path(job.events_path, folder),
-            predictions_path=keyed_path(job.predictions_path, folder),
-            quarantine_path=self._key_quarantine(folder),
-            checkpoint_path=self._state_path(state, state.gen) if state.gen else None,
-            checkpoint_every=0, checkpoint_seconds=0.0, follow=False, idle_exit=None)
+        if self._key_template is None:
+            template = dataclasses.replace(
+                job, by=None, schema_path=None, declared={}, fmt=None,
+                header=None, summary_path=None, checkpoint_path=None,
+                checkpoint_every=0, checkpoint_seconds=0.0, follow=False, idle_exit=None)
+            if self.schema is not None:
+                template.learner_settings(self.schema.task)   # worked out and kept
+            self._key_template = template
+        mine = copy.copy(self._key_template)
+        mine.save_path = keyed_path(job.save_path, folder)
+        mine.snapshot_dir = keyed_path(job.snapshot_dir, folder, directory=True)
+        mine.metrics_path = keyed_path(job.metrics_path, folder)
+        mine.events_path = keyed_path(job.events_path, folder)
+        mine.predictions_path = keyed_path(job.predictions_path, folder)
+        mine.quarantine_path = self._key_quarantine(folder)
+        mine.checkpoint_path = self._state_path(state, state.gen) if state.gen else None
+        return mine
 
     def _key_quarantine(self, folder: str) -> str:
         """Where a key's own rejects go (records its encoder refuses): in the key's folder
