@@ -8,11 +8,13 @@ checkpoint and exit, then removes its actor for good.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import os
+import sys
 import time
-from typing import Callable
+from typing import Callable, Iterator
 
 from stream.errors import ConfigError, SapwoodError
 
@@ -33,19 +35,32 @@ def _ray():
     return ray
 
 
-def connect(address: str | None) -> None:
-    """Join the running Ray cluster at ``address`` (``auto``: the one this machine
-    belongs to, as ``ray start`` left it)."""
+@contextlib.contextmanager
+def ray_session(address: str | None) -> Iterator:
+    """Ray joined for the block (``address``; ``auto``: the cluster this machine belongs
+    to, as ``ray start`` left it), then left. While joined, whatever Ray prints (its
+    processes' log lines forwarded to the driver) goes to stderr, so that stdout carries
+    only what the command prints (``status --json``)."""
     ray = _ray()
-    if ray.is_initialized():
-        return
+    sys.stdout.flush()
+    saved = os.dup(1)
+    os.dup2(2, 1)
     try:
-        ray.init(address=address or "auto", namespace=RAY_NAMESPACE,
-                 logging_level=logging.WARNING, log_to_driver=False)
-    except (ConnectionError, RuntimeError, ValueError) as exc:
-        raise ConfigError(f"cannot reach a Ray cluster at {address or 'auto'}: {exc} "
-                          f"(start one with `ray start --head`, or give --address "
-                          f"HOST:PORT)") from None
+        with contextlib.redirect_stdout(sys.stderr):
+            try:
+                ray.init(address=address or "auto", namespace=RAY_NAMESPACE,
+                         logging_level=logging.WARNING, log_to_driver=False)
+            except (ConnectionError, RuntimeError, ValueError) as exc:
+                raise ConfigError(f"cannot reach a Ray cluster at {address or 'auto'}: "
+                                  f"{exc} (start one with `ray start --head`, or give "
+                                  f"--address HOST:PORT)") from None
+            try:
+                yield ray
+            finally:
+                ray.shutdown()
+    finally:
+        os.dup2(saved, 1)
+        os.close(saved)
 
 
 def start(home: str, plan: GrovePlan, address: str | None,
@@ -63,8 +78,11 @@ def start(home: str, plan: GrovePlan, address: str | None,
         if {**old.to_dict(), "state": None} != {**plan.to_dict(), "state": None}:
             raise ConfigError(f"{home!r} holds a stopped grove with other settings; "
                               f"start it with the same ones, or use another folder")
-    connect(address)
-    ray = _ray()
+    with ray_session(address) as ray:
+        return _start_actors(ray, home, plan, say)
+
+
+def _start_actors(ray, home: str, plan: GrovePlan, say: Callable[[str], None]) -> list[dict]:
     from .actor import RemoteLearner
 
     for learner in plan.learners:
@@ -122,15 +140,21 @@ def status(home: str, address: str | None,
     answer within :data:`REPORT_TIMEOUT`), or None (Ray not asked)."""
     plan = read_plan(home)
     rows = [learner_figures(home, learner) for learner in plan.learners]
+    if not ask_ray:
+        for row in rows:
+            row["alive"] = None
+        return plan, rows, "--folder-only"
     try:
-        if not ask_ray:
-            raise SapwoodError("--folder-only")
-        connect(address)
+        with ray_session(address) as ray:
+            _ask_actors(ray, plan, rows)
     except SapwoodError as exc:
         for row in rows:
             row["alive"] = None
         return plan, rows, str(exc)
-    ray = _ray()
+    return plan, rows, None
+
+
+def _ask_actors(ray, plan: GrovePlan, rows: list[dict]) -> None:
     pending = {}
     for row, learner in zip(rows, plan.learners):
         try:
@@ -146,7 +170,6 @@ def status(home: str, address: str | None,
             row["alive"] = True
         except Exception:  # noqa: BLE001 - any failure means: no answer from this actor
             row["alive"] = False
-    return plan, rows, None
 
 
 def stop(home: str, address: str | None, timeout: float,
@@ -159,8 +182,15 @@ def stop(home: str, address: str | None, timeout: float,
         return []
     plan.state = "stopping"   # an actor restarted from here on starts no learner
     write_plan(home, plan)
-    connect(address)
-    ray = _ray()
+    with ray_session(address) as ray:
+        results = _stop_actors(ray, plan, timeout, say)
+    plan.state = "stopped"
+    write_plan(home, plan)
+    return results
+
+
+def _stop_actors(ray, plan: GrovePlan, timeout: float,
+                 say: Callable[[str], None]) -> list[dict]:
     results = []
     for learner in plan.learners:
         try:
@@ -175,6 +205,4 @@ def stop(home: str, address: str | None, timeout: float,
         ray.kill(actor, no_restart=True)
         say(f"{learner.name}: {report.get('status')} (exit {report.get('child_exit')})")
         results.append(report)
-    plan.state = "stopped"
-    write_plan(home, plan)
     return results

@@ -193,8 +193,3 @@ def read_plan(home: str) -> GrovePlan:
                           f"`sapwood grove start`") from None
     except (OSError, ValueError, KeyError, TypeError) as exc:
         raise ConfigError(f"cannot read the grove's plan {path!r}: {exc}") from exc
-
-
-def quoted(args: list[str]) -> str:
-    """``args`` as one shell line (for messages and logs)."""
-    return " ".join(shlex.quote(a) for a in args)

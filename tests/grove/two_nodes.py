@@ -53,7 +53,16 @@ def why_not() -> str | None:
     made = subprocess.run(["ip", "netns", "add", probe], capture_output=True, text=True)
     if made.returncode != 0:
         return f"this machine cannot create network namespaces: {made.stderr.strip()}"
-    subprocess.run(["ip", "netns", "del", probe], check=False)
+    try:
+        for what, command in (("a bridge", ["ip", "link", "add", "br0", "type", "bridge"]),
+                              ("a veth pair", ["ip", "link", "add", "v0", "type", "veth",
+                                               "peer", "name", "v1"])):
+            done = subprocess.run(["ip", "netns", "exec", probe, *command],
+                                  capture_output=True, text=True)
+            if done.returncode != 0:
+                return f"this machine cannot create {what}: {done.stderr.strip()}"
+    finally:
+        subprocess.run(["ip", "netns", "del", probe], check=False)
     return None
 
 
