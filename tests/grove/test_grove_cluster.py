@@ -206,10 +206,15 @@ def run_with_failure(folder: Path, entries: dict, reference: Path, failure) -> l
         failure(nodes, placed, start_grove)
         feeder.join()
         wait_learned(home, {s: len(r) for s, r in entries.items()}, 300)
-        status = nodes.sapwood("grove", "status", str(home), "--json", "--address",
-                               nodes.ray_address)
-        live = json.loads(status.stdout)["learners"]
-        assert all(r["alive"] for r in live), live
+        deadline = time.monotonic() + 90   # an actor may be restarting (a node declared
+        while True:                         # dead late) even though all is checkpointed
+            status = nodes.sapwood("grove", "status", str(home), "--json", "--address",
+                                   nodes.ray_address)
+            live = json.loads(status.stdout)["learners"]
+            if all(r["alive"] for r in live):
+                break
+            assert time.monotonic() < deadline, live
+            time.sleep(2)
         nodes.sapwood("grove", "stop", str(home), "--address", nodes.ray_address)
         plan = read_plan(str(home))
         assert plan.state == "stopped"
