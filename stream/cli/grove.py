@@ -40,8 +40,9 @@ def grove() -> None:
 @click.argument("streams", nargs=-1, required=True, metavar="STREAM...")
 @click.option("--redis", "redis_url", required=True, metavar="URL",
               help="The Redis server or cluster node holding the streams (redis:// or "
-                   "rediss://; query options such as password_env or format apply to "
-                   "every stream).")
+                   "rediss://; query options such as format apply to every stream; a "
+                   "password_env variable must be set where each node's `ray start` "
+                   "ran).")
 @click.option("--target", required=True, help="Field to predict.")
 @click.option("--by", required=True, metavar="FIELD",
               help="Learn one tree per value of FIELD.")
