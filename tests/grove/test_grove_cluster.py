@@ -34,6 +34,7 @@ import pytest
 from river.datasets import synth
 
 from connectors.local_brokers import LocalRedis
+from stream.child_env import same_code_env
 from stream.grove.control import learner_figures
 from stream.grove.plan import make_plan, read_plan, stream_for, write_plan
 
@@ -96,6 +97,7 @@ def reference(entries, tmp_path_factory):
     folder = tmp_path_factory.mktemp("grove-reference")
     (folder / "redis").mkdir()
     server = LocalRedis(folder / "redis", durable=False).start()
+    children: list[subprocess.Popen] = []
     try:
         client = server.client()
         for stream, rows in entries.items():
@@ -103,17 +105,21 @@ def reference(entries, tmp_path_factory):
         plan = make_plan("reference", server.url(), STREAMS, "class", "car",
                          LEARN_ARGS, 1.0)
         home = folder / "home"
-        children = []
         for learner in plan.learners:
             plan.make_folder(str(home), learner)
             children.append(subprocess.Popen(
-                [sys.executable, "-m", "stream.cli", *plan.learn_command(str(home), learner)]))
+                [sys.executable, "-m", "stream.cli", *plan.learn_command(str(home), learner)],
+                env=same_code_env()))
         write_plan(str(home), plan)
         wait_learned(home, {s: len(r) for s, r in entries.items()}, 120)
         for child in children:
             child.send_signal(signal.SIGTERM)
         assert [child.wait(60) for child in children] == [0] * len(children)
     finally:
+        for child in children:
+            if child.poll() is None:
+                child.kill()
+                child.wait()
         server.stop()
     return home
 
