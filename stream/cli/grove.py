@@ -77,8 +77,7 @@ def _check_learn_args(plan, home: str) -> None:
     learner starts (a learner with bad options would fail and restart for ever)."""
     from stream.run.keyed import check_keyed_job
 
-    from .learn import learn, learn_job
-    from .options import take_renamed
+    from .learn import learn, learn_job, take_command_flags
 
     args = plan.learn_command(home, plan.learners[0])[1:]
     try:
@@ -86,9 +85,7 @@ def _check_learn_args(plan, home: str) -> None:
         with ctx:
             kw = dict(ctx.params)
             sources = list(kw.pop("sources"))
-            take_renamed(kw, "numeric_splits")
-            kw.pop("print_config", None)
-            kw.pop("quiet", None)
+            take_command_flags(kw)
             check_keyed_job(learn_job(sources, kw))
     except click.ClickException as exc:
         raise ConfigError(f"--learn-args: {exc.format_message()}") from None

@@ -40,12 +40,11 @@ def learn(sources, **kw) -> None:
     from stream.run.engine import LearnRun
 
     ctx = click.get_current_context()
-    take_renamed(kw, "numeric_splits")
+    print_config, quiet = take_command_flags(kw)
     ctx.params["numeric_splits"] = kw["numeric_splits"]
-    if kw.pop("print_config"):
+    if print_config:
         echo(settings_in_force(ctx), nl=False)
         return
-    quiet = kw.pop("quiet")
     job = learn_job(list(sources), kw)
     progress = _Progress()
     if job.by is not None:
@@ -66,6 +65,14 @@ def learn(sources, **kw) -> None:
     progress.done()
     if not quiet:
         echo(closing_report(summary), err=True)
+
+
+def take_command_flags(kw: dict) -> tuple[bool, bool]:
+    """Settle ``kw`` (the learn options as click passes them) for :func:`learn_job`: a
+    renamed option folded into its new name, and the flags that are not the job's taken
+    out. Returns (print_config, quiet)."""
+    take_renamed(kw, "numeric_splits")
+    return bool(kw.pop("print_config", False)), bool(kw.pop("quiet", False))
 
 
 def learn_job(sources: list[str], kw: dict):
