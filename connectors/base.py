@@ -75,6 +75,18 @@ class RawBatch:
         return len(self.frame)
 
 
+class ColumnHints:
+    """What the run has settled about the columns, shared with the readers as it settles
+    it (readers on other threads read it; it is only ever replaced whole).
+
+    ``labels``: columns read as labels (category fields, class labels). A reader that
+    can may hand them over already numbered, as a pandas Categorical, instead of as text
+    to be numbered later; the labels are the same either way."""
+
+    def __init__(self) -> None:
+        self.labels: frozenset[str] = frozenset()
+
+
 @runtime_checkable
 class Source(Protocol):
     """A stream of records: iterate batches, then close."""

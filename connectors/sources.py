@@ -27,7 +27,7 @@ from typing import BinaryIO, Callable, Iterator
 from stream.checks import require_int
 from stream.errors import ConfigError, InputError, SchemaError
 
-from .base import RawBatch, Source
+from .base import ColumnHints, RawBatch, Source
 from .delimited import CsvReader, TsvReader
 from .follow import (FileRestarted, FollowControl, GrowingFile, content_matches,
                      find_by_identity, identity)
@@ -44,6 +44,7 @@ FORMATS = {
 }
 """Format name -> reader class. A reader takes (opener, origin, batch_rows) and lists
 its file name ``extensions``; adding a format is one line here."""
+_DELIMITED = ("csv", "tsv")
 
 STDIN = "-"
 _GZIP_MAGIC = b"\x1f\x8b"
@@ -199,20 +200,23 @@ def _reader_position(position: dict | None) -> dict | None:
             if k in position}
 
 
-def _reader(fmt: str, names: list[str] | None, *args, **kwargs):
-    """The reader of format ``fmt``; ``names`` (a header of the user's) for CSV and TSV."""
-    if names is None:
-        return FORMATS[fmt](*args, **kwargs)
-    if fmt not in ("csv", "tsv"):
+def _reader(fmt: str, names: list[str] | None, *args, hints: ColumnHints | None = None,
+            **kwargs):
+    """The reader of format ``fmt``; ``names`` (a header of the user's) and ``hints``
+    for CSV and TSV."""
+    if fmt in _DELIMITED:
+        return FORMATS[fmt](*args, names=names, hints=hints, **kwargs)
+    if names is not None:
         raise ConfigError(f"--header names the columns of CSV and TSV files; "
                           f"{args[1]!r} is read as {fmt}")
-    return FORMATS[fmt](*args, names=names, **kwargs)
+    return FORMATS[fmt](*args, **kwargs)
 
 
 class _FileInput:
     """One named file, read to its end."""
 
     names: list[str] | None = None
+    hints: ColumnHints | None = None
 
     def __init__(self, path: str, fmt: str) -> None:
         self.origin = path
@@ -231,7 +235,7 @@ class _FileInput:
                     f"replaced or shortened); remove the checkpoint to learn it from the "
                     f"start")
             reader = _reader(self._format, self.names, lambda: stream, path, batch_rows,
-                             resume=_reader_position(resume))
+                             resume=_reader_position(resume), hints=self.hints)
             if reader.columns is not None:
                 check(path, reader.columns)
             fd = stream.fileno()
@@ -250,6 +254,8 @@ class _FollowedInput:
 
     names: list[str] | None = None
 
+    hints: ColumnHints | None = None
+
     def __init__(self, path: str, fmt: str, control: FollowControl) -> None:
         self.origin = path
         self._format = fmt
@@ -265,7 +271,8 @@ class _FollowedInput:
         while True:
             stream = GrowingFile(path, self.control, handle, offset, mark)
             reader = _reader(self._format, self.names, lambda ready=stream: ready, path,
-                             batch_rows, resume=_reader_position(at), known_columns=known)
+                             batch_rows, resume=_reader_position(at), known_columns=known,
+                             hints=self.hints)
             try:
                 if reader.columns is not None:
                     check(path, reader.columns)
@@ -329,6 +336,7 @@ class _FollowedInput:
 class _StdinInput:
     origin = STDIN
     names: list[str] | None = None
+    hints: ColumnHints | None = None
 
     def __init__(self, stream, fmt: str | None) -> None:
         self._stream = stream
@@ -347,7 +355,7 @@ class _StdinInput:
             stream = _Prefixed(head, stream)
             fmt = sniff_format(head)
         ready = stream
-        return _reader(fmt, self.names, lambda: ready, STDIN, batch_rows)
+        return _reader(fmt, self.names, lambda: ready, STDIN, batch_rows, hints=self.hints)
 
     def batches(self, index: int, batch_rows: int, resume: dict | None,
                 check: Callable[[str, list[str]], None]) -> Iterator[RawBatch]:
@@ -381,6 +389,10 @@ class ChainedSource:
         self.name = ", ".join(inp.origin for inp in inputs)
         self.header_columns: list[str] | None = None
         """The columns of the first header read (delimited inputs), even with no record."""
+        self.hints = ColumnHints()
+        """What the run settles about the columns, handed to every input's reader."""
+        for inp in inputs:
+            inp.hints = self.hints
 
     @property
     def resumable(self) -> bool:

@@ -137,3 +137,4 @@ def warm_up() -> None:
                                                  min_branch_records=1, detector=detector))
         model.learn(X, y)
         model.predict(X)
+    model._make_room()     # the room checks run only when a learn call fills a table

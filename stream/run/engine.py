@@ -35,6 +35,7 @@ from typing import Callable, TextIO
 import numpy as np
 
 from connectors.base import RawBatch
+from connectors.delimited import warm_up as warm_reader
 from connectors.follow import FollowControl, FollowStopped
 from stream.errors import (
     ConfigError,
@@ -152,6 +153,7 @@ class LearnRun(StopsOnSignal):
         job = self.job
         warm = self.clock()
         warm_up()
+        warm_reader()
         self.startup_seconds = self.clock() - warm
         self.started = self.clock()
         if self.checkpoint is not None:
@@ -305,6 +307,8 @@ class LearnRun(StopsOnSignal):
         Files and pipes are read one batch ahead on a thread of their own."""
         self._pending = []
         ahead = None if self._live() else ReadAhead(self.source.batches())
+        if self.schema is not None:   # declared or resumed
+            self._tell_readers(ahead)
         pairs = ((batch, None) for batch in self.source.batches()) if ahead is None else ahead
         held_since = None
         try:
@@ -315,13 +319,10 @@ class LearnRun(StopsOnSignal):
                     # a live feed that never falls quiet is not held back for long either
                     if held_enough(self._pending) or (
                             ahead is None and self.clock() - held_since >= LIVE_INFER_SECONDS):
-                        self._learn_pending()
+                        self._learn_pending(ahead)
                 else:
                     self._consume(batch, prepared)
                     self._after_batch(batch)
-                if ahead is not None and self.schema is not None and not ahead.preparing:
-                    ahead.prepare_with(functools.partial(
-                        prepare_columns, self.schema, scoring=self.delayed is not None))
                 if self.stop.is_set():
                     break
         finally:
@@ -332,17 +333,29 @@ class LearnRun(StopsOnSignal):
             if self._pending and sys.exc_info()[0] in (None, FollowStopped, InputError):
                 self._learn_pending()
 
+    def _tell_readers(self, ahead: ReadAhead | None) -> None:
+        """The schema is settled: the source's readers learn which columns are labels,
+        and ``ahead`` (if reading ahead) reads the columns of each batch it reads."""
+        hints = getattr(self.source, "hints", None)
+        if hints is not None:
+            hints.labels = frozenset(self.schema.label_columns())
+        if ahead is not None:
+            ahead.prepare_with(functools.partial(prepare_columns, self.schema,
+                                                 scoring=self.delayed is not None))
+
     def _live(self) -> bool:
         """Whether the source waits for more records (a followed file, a broker)."""
         return self.job.follow or hasattr(self.source, "on_quiet")
 
-    def _learn_pending(self) -> None:
-        """Infer the schema from the batches held back, then learn them."""
+    def _learn_pending(self, ahead: ReadAhead | None = None) -> None:
+        """Infer the schema from the batches held back, then learn them (see
+        :meth:`_tell_readers` for ``ahead``)."""
         pending, self._pending = self._pending, []
         if not any(len(b.frame) for b in pending) and any(b.rejects for b in pending):
             self._quarantine_unread(pending)   # no record to infer from yet: wait for one
             return
         self._start(infer_run_schema(pending, self.job, self.delayed is not None))
+        self._tell_readers(ahead)
         for held in pending:
             self._consume(held)
             self._after_batch(held)

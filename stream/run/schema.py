@@ -141,6 +141,12 @@ class Schema:
     def time_field(self) -> str | None:
         return next((f.name for f in self.fields if f.kind == "time"), None)
 
+    def label_columns(self) -> list[str]:
+        """Fields read as labels: the category features, and the target of a
+        classification."""
+        labels = [f.name for f in self.fields if f.kind == "category"]
+        return labels + [self.target] if self.task == "classification" else labels
+
     def kind_of(self, name: str) -> str:
         """Kind of field ``name``; SchemaError when there is no such field."""
         for f in self.fields:
@@ -344,7 +350,7 @@ def _infer_task(target: str, values: pd.Series) -> str:
                           "records; give the task")
     if distinct.dtype.kind == "b":
         return "classification"
-    if {str(v).strip().lower() for v in distinct} <= _BOOLEAN_TEXT:
+    if all(str(v).strip().lower() in _BOOLEAN_TEXT for v in distinct):  # stops early
         return "classification"
     numbers, bad = parse_numbers(distinct)
     if bad.any():

@@ -234,6 +234,7 @@ def warm_up() -> None:
                                                 detector=detector))
             scored = model.learn(X, y, ["p", "q"])
             model.predict(X)
+    model._make_room()     # the room checks run only when a learn call fills a table
     ClassificationScore(2, 0.9, log_every=1).update(y, scored.pred, 2)
     RegressionScore(2, 0.9, log_every=1).update(np.ones(3), np.zeros(3))
     from stream.resolution import decimals_of
@@ -241,6 +242,10 @@ def warm_up() -> None:
     from .encoding import _renumbered
 
     decimals_of(X[:, 0])
+    column = X[:, 0].copy()
+    decimals_of(column)
+    column.flags.writeable = False     # a parsed column is often a read-only view
+    decimals_of(column)
     _renumbered(np.array([1, 0, -1], dtype=np.int64), ["p", "q"])
     warm_regressor()
     _WARM["done"] = True

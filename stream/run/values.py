@@ -166,6 +166,10 @@ def factorize_labels(values: Any) -> tuple[np.ndarray, list[str | None]]:
         # str per row: twice as fast as through an object array (measured, 1M rows)
         codes, uniques = pd.factorize(values)
         return _text_codes(codes, uniques)
+    if isinstance(getattr(values, "dtype", None), pd.CategoricalDtype):
+        # text the parser already numbered: only its categories are read as labels
+        codes, uniques = pd.factorize(values)
+        return _text_codes(codes, uniques.astype(object))
     arr = as_array(values)
     kind = arr.dtype.kind
     if kind == "b":

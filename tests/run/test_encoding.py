@@ -8,6 +8,7 @@ to epoch seconds).
 from __future__ import annotations
 
 import datetime as dt
+import io
 import json
 import os
 
@@ -128,6 +129,32 @@ def test_labels_agree_across_the_forms_one_value_takes():
     assert [labels_b[c] if c >= 0 else None for c in codes_b] == ["1", None, "2.5"]
     assert [labels_c[c] if c >= 0 else None for c in codes_c] == [
         "1", "x", None, "True", "True", "1"]
+
+
+_TOKEN = st.one_of(
+    st.sampled_from(["a", "B", "NA", "", "n/a", "null", "x1", "1", "1.0", "01", "-0", "2.50",
+                     "1e3", "True", "true", "FALSE", "yes", "inf", "-inf", "é", "a b"]),
+    st.integers(-10**6, 10**6).map(str),
+    st.floats(-1e6, 1e6, allow_nan=False).map(repr),
+    st.decimals(-1000, 1000, places=6, allow_nan=False).map(str))
+
+
+@settings(max_examples=80, deadline=None)
+@given(column=st.lists(_TOKEN, min_size=1, max_size=60))
+def test_labels_are_the_same_when_the_parser_hands_text_already_numbered(column):
+    # the reader may parse label columns straight into pandas Categoricals (dtype
+    # "category"); each record must get the label pandas' default parse of the same
+    # CSV gives (reference: pandas.read_csv's own type inference)
+    text = "c,pad\n" + "".join(f"{token},0\n" for token in column)
+    default = pd.read_csv(io.StringIO(text))["c"]
+    numbered = pd.read_csv(io.StringIO(text), dtype={"c": "category"})["c"]
+    assert isinstance(numbered.dtype, pd.CategoricalDtype)
+
+    def per_record(values):
+        codes, labels = factorize_labels(values)
+        return [labels[c] if c >= 0 else None for c in codes]
+
+    assert per_record(numbered) == per_record(default)
 
 
 def test_new_categories_and_classes_mid_stream_get_new_codes():

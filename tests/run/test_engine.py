@@ -27,6 +27,7 @@ import math
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
+import pandas as pd
 import pytest
 from river import datasets as river_datasets
 from river import metrics as river_metrics
@@ -34,6 +35,8 @@ from river import tree as river_tree
 from river import utils as river_utils
 from river.datasets import synth
 
+from connectors.base import ColumnHints
+from connectors.delimited import DelimitedReader
 from stream.classify.settings import TreeSettings
 from stream.errors import ConfigError
 from stream.run.engine import LearnRun, run_learn
@@ -182,6 +185,32 @@ def test_outputs_do_not_depend_on_batch_rows(mixed, tmp_path):
     for rows in (1000, 777):
         for part in ("summary", "metrics", "predictions", "snapshots"):
             assert runs[rows][part] == reference[part], f"{part} differ at batch_rows={rows}"
+
+
+def test_outputs_do_not_depend_on_the_reader_numbering_the_label_columns(
+        mixed, tmp_path, monkeypatch):
+    # once the schema is settled the CSV reader parses the label columns (elevel, car,
+    # zipcode and the class) straight into Categoricals; read as text instead, every
+    # output must be the same
+    parsed = []
+    parse = DelimitedReader._parse
+
+    def spy(self, data):
+        frame = parse(self, data)
+        parsed.append(sum(isinstance(t, pd.CategoricalDtype) for t in frame.dtypes))
+        return frame
+
+    monkeypatch.setattr(DelimitedReader, "_parse", spy)
+    numbered = _outputs(mixed, tmp_path / "numbered", 1000)
+    assert parsed[0] == 0 and max(parsed) == 4        # hints come once the schema is
+    parsed.clear()
+    monkeypatch.setattr(ColumnHints, "labels", property(lambda self: frozenset(),
+                                                        lambda self, value: None),
+                        raising=False)                 # hints set are not kept
+    as_text = _outputs(mixed, tmp_path / "text", 1000)
+    assert max(parsed) == 0
+    for part in ("summary", "metrics", "predictions", "snapshots"):
+        assert numbered[part] == as_text[part], part
 
 
 def test_inferred_schema_does_not_depend_on_batch_rows(tmp_path):
