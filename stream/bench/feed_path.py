@@ -6,7 +6,8 @@ regression streams (Friedman #1 and its 50-feature variant, as in the regression
 the records are drawn once and held in memory; sapwood learns them in one ``learn`` call
 (the in-memory rate, best of the bench's repeats), then the same records written to a
 CSV file are learned by a child ``sapwood learn FILE`` and ``sapwood learn -`` (the
-summary's records/s, which leaves out the start-up), with drift watching off and with
+summary's records/s, which leaves out the start-up; best of as many child runs as
+in-memory repeats), with drift watching off and with
 ADWIN; a bare ``pandas.read_csv`` of the file gives the parser's own rate. Targets: file
 and stdin at least 0.8 of the in-memory rate of the same settings; Friedman #1 from the
 file at least 50x river's HoeffdingTreeRegressor (timed on the first 40k records).
@@ -53,9 +54,10 @@ def _measure(bench: Bench, result: SuiteResult, name: str, path, n: int, memory_
         memory_rps = n / memory_seconds(detector)
         extra = ["--drift", detector]
         bench.say(f"feed path: {name}, drift {detector}: file and stdin")
-        from_file = learn_child(bench, None, "label", pipe=False, source=str(path),
-                                extra=extra).summary
-        from_pipe = learn_child(bench, path, "label", pipe=True, extra=extra).summary
+        from_file = _fastest_child(bench, lambda: learn_child(
+            bench, None, "label", pipe=False, source=str(path), extra=extra).summary)
+        from_pipe = _fastest_child(bench, lambda: learn_child(
+            bench, path, "label", pipe=True, extra=extra).summary)
         row = {"stream": name, "drift": detector, "memory_rps": memory_rps,
                "file_rps": from_file["records_per_second"],
                "stdin_rps": from_pipe["records_per_second"],
@@ -75,6 +77,14 @@ def _measure(bench: Bench, result: SuiteResult, name: str, path, n: int, memory_
                   _TARGET, ">=", "x"),
         ]
     return rows
+
+
+def _fastest_child(bench: Bench, run) -> dict:
+    """The summary of the fastest of ``bench.repeats`` child runs: the same statistic
+    as the in-memory rate it is compared with (until 2026-12-05 a single child run
+    was compared with the best of the in-memory repeats)."""
+    summaries = [run() for _ in range(max(1, bench.repeats))]
+    return max(summaries, key=lambda summary: summary["records_per_second"])
 
 
 def _pandas_rps(bench: Bench, path, n: int) -> float:
@@ -149,7 +159,8 @@ def feed_path_suite(bench: Bench) -> SuiteResult:
                                 f"first {m:,} records).")
     result.notes.append("In memory: one learn call over the records drawn "
                         "(best of the bench's repeats). File and stdin: the child's "
-                        "records/s, from the first record read to the last learned. "
+                        "records/s, from the first record read to the last learned "
+                        "(best of as many child runs). "
                         "Regression streams: the target column is named 'label' too.")
     result.notes.append(warm_note(warm))
     return result
