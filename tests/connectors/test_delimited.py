@@ -334,3 +334,17 @@ def test_the_run_learns_the_column_the_user_names(tmp_path):
     assert sorted(summary["classes"]) == ["a", "b"] and summary["learned"] == 30
     with pytest.raises(ConfigError, match="--header must name every column once"):
         run_learn(LearnJob(sources=[str(path)], target="y", header=["y", "x", "y"]))
+
+
+def test_batches_grow_from_a_small_first_one_doubling_at_most():
+    # the learner starts on a small first batch; the later ones grow, at most doubling,
+    # so the parser keeps ahead; every line is read once, in order
+    text = "a,b\n" + "".join(f"{i},{i % 7}\n" for i in range(300_000))
+    reader = CsvReader(lambda: io.BytesIO(text.encode()), "grow.csv", batch_rows=65_536)
+    sizes, firsts = [], []
+    for batch in reader.batches():
+        sizes.append(len(batch))
+        firsts.append(int(batch.frame["a"].iloc[0]))
+    assert sum(sizes) == 300_000 and firsts == [sum(sizes[:i]) for i in range(len(sizes))]
+    assert sizes[0] <= delimited.FIRST_BATCH_ROWS and max(sizes) == 65_536
+    assert all(later <= 2 * earlier for earlier, later in zip(sizes, sizes[1:-1]))
