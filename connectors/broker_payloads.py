@@ -29,6 +29,7 @@ from __future__ import annotations
 import csv
 import dataclasses
 import io
+import itertools
 import json
 import logging
 import os
@@ -721,6 +722,10 @@ def frame_from_fields(entries: Sequence[Sequence[bytes]], lines: np.ndarray, ori
     together) is rejected.
     """
     lines = np.asarray(lines, dtype=np.int64)
+    if entries and entries[0]:
+        data = _uniform_columns(entries, entries[0][0::2], max_bytes)
+        if data is not None:
+            return Parsed(pd.DataFrame(data), lines, [])
     rejects: list[Reject] = []
     keep: list[int] = []
     for i, flat in enumerate(entries):
@@ -736,11 +741,8 @@ def frame_from_fields(entries: Sequence[Sequence[bytes]], lines: np.ndarray, ori
     if not keep:
         return Parsed(_empty_frame(), lines[:0], rejects)
     rows = [entries[i] for i in keep]
-    first = rows[0][0::2]
-    if all(r[0::2] == first for r in rows) and len(set(first)) == len(first):
-        data = {_text(name): [r[2 * k + 1].decode("utf-8", "replace") for r in rows]
-                for k, name in enumerate(first)}
-    else:
+    data = _uniform_columns(rows, rows[0][0::2])
+    if data is None:
         data = {}
         for row_no, flat in enumerate(rows):
             for name, value in zip(flat[0::2], flat[1::2]):
@@ -749,6 +751,40 @@ def frame_from_fields(entries: Sequence[Sequence[bytes]], lines: np.ndarray, ori
                     column = data[_text(name)] = [None] * len(rows)
                 column[row_no] = _text(value)  # a repeated field: the last value wins
     return Parsed(pd.DataFrame(data), lines[keep], rejects)
+
+
+_SEPARATOR = "\x00"
+
+
+def _uniform_columns(rows: Sequence[Sequence[bytes]], first: Sequence[bytes],
+                     max_bytes: int | None = None) -> dict[str, list[str]] | None:
+    """The columns of entries that all carry the distinct fields ``first`` in that
+    order, or None when one does not (or, given ``max_bytes``, when the entries
+    together are larger: one of them may be over the limit).
+
+    Whole-batch work in C instead of a decode per value: the flat lists are chained
+    into one, names and values taken by slices, and all values decoded as one text
+    joined by NUL and split again (a value holding NUL falls back to one decode per
+    value: the split would not give one part per value)."""
+    width = 2 * len(first)
+    if len(set(first)) != len(first) or any(len(r) != width for r in rows):
+        return None
+    flat = list(itertools.chain.from_iterable(rows))
+    if any(flat[2 * k::width] != [name] * len(rows) for k, name in enumerate(first)):
+        return None
+    values = flat[1::2]
+    try:
+        joined = b"\x00".join(values)
+    except TypeError:                     # str values (a client that decodes replies)
+        return None
+    if max_bytes is not None and \
+            len(joined) - len(values) + 1 + len(rows) * sum(map(len, first)) > max_bytes:
+        return None
+    parts = joined.decode("utf-8", "replace").split(_SEPARATOR)
+    if len(parts) != len(values):         # a value held NUL
+        parts = [value.decode("utf-8", "replace") for value in values]
+    step = len(first)
+    return {_text(name): parts[k::step] for k, name in enumerate(first)}
 
 
 def _text(value: bytes | str) -> str:

@@ -289,6 +289,39 @@ def test_fields_entries_become_text_rows():
         ("tel", 7, "entry has no fields (entry 1-2)"),
         ("tel", 8, "entry is 51 bytes, over the limit of 40 (entry 1-3)"),
     ]
+    same_fields = [[b"t", b"1"], [b"t", b"x" * 50], [b"t", b"2"]]   # one entry too big
+    parsed = frame_from_fields(same_fields, np.array([1, 2, 3]), "tel",
+                               ["entry 1-0", "entry 1-1", "entry 1-2"], max_bytes=40)
+    assert parsed.frame["t"].tolist() == ["1", "2"] and parsed.lines.tolist() == [1, 3]
+    assert [r.line for r in parsed.rejects] == [2]
+
+
+_FIELD_BYTES = st.binary(max_size=6) | st.sampled_from([b"", b"\x00", b"a\x00b", b"\xff\xfe",
+                                                       "\u00e9".encode(), b"21.5"])
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.lists(st.sampled_from([b"t", b"door", b"\xe9t\xff", b"x"]), min_size=1, max_size=3,
+                unique=True),
+       st.lists(st.lists(_FIELD_BYTES, min_size=3, max_size=3), min_size=1, max_size=12),
+       st.booleans())
+def test_fields_entries_read_whole_batch_equal_one_value_at_a_time(names, values, shuffle):
+    """The whole-batch reading of entries (one decode of all values, NUL-joined) gives
+    the frame that decoding each value on its own gives: invalid UTF-8 replaced, NUL
+    inside values, and entries whose fields differ in order or number."""
+    entries = [[part for name, value in zip(names, row) for part in (name, value)]
+               for row in values]
+    if shuffle and len(entries) > 1:
+        entries[-1] = entries[-1][2:] + entries[-1][:2]
+    expected: dict = {}
+    for row_no, flat in enumerate(entries):
+        for name, value in zip(flat[0::2], flat[1::2]):
+            column = expected.setdefault(name.decode("utf-8", "replace"),
+                                         [None] * len(entries))
+            column[row_no] = value.decode("utf-8", "replace")
+    lines = np.arange(1, len(entries) + 1)
+    parsed = frame_from_fields(entries, lines, "tel", [f"entry {i}" for i in lines])
+    assert parsed.frame.to_dict("list") == expected and not parsed.rejects
 
 
 # ---------------------------------------------------------------------------------------
