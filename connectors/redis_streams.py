@@ -30,13 +30,17 @@ How exactly-once works (Redis documentation of XREADGROUP, XACK, XPENDING, XAUTO
   after the link is back and would assign entries on a connection nobody reads.
 * Before it ends (``idle_exit``) it asks for pending entries after the last one handed
   out (XPENDING) and reads them first, so no entry it holds is left unseen.
+* Reads go on a connection of their own, and while a batch of new entries is parsed and
+  learned the next read is already sent on it (one read in flight), so the server
+  gathers the next entries meanwhile. Entries of a read in flight when the run stops are
+  pending under this consumer, unseen, and its next run reads them first.
 * Entries deleted from the stream before they were read (XDEL, MAXLEN trimming) come
   back as ids without fields; they go to quarantine and are acknowledged.
 
 On a Redis Cluster any node serves as the address: the source uses a cluster-aware
 client (:mod:`connectors.redis_clients`) that follows MOVED and ASK, so reading goes on
 when the stream's hash slot moves to another node; the connection closed after a loss
-is the one on the node that served the stream then.
+is the one on the node that served the stream then. There, reads are not sent ahead.
 
 Assumptions: one learner per consumer group (``claim=false`` lets several learners
 share a group, each under its own fixed consumer name, each recovering only its own
@@ -234,6 +238,8 @@ class RedisStreamSource:
         self._unacked: collections.deque[tuple[tuple[int, int], list[bytes]]] = \
             collections.deque()
         self._cursor: bytes = b"0"  # an id: own pending entries after it; b">": new ones
+        self._read_conn = None      # the connection of reads (none on a cluster)
+        self._in_flight: tuple | None = None  # a read sent ahead, its reply not yet read
         self._recovered = False
         self._closed = False
         self.fence: Fence | None = None
@@ -397,20 +403,24 @@ class RedisStreamSource:
         import redis
         return (redis.ConnectionError, redis.TimeoutError, OSError)
 
-    def _call(self, *args: Any, make_args: Callable[[], tuple] | None = None):
+    def _call(self, *args: Any, make_args: Callable[[], tuple] | None = None,
+              reading: bool = False):
         """One command, reconnecting with backoff while the server cannot be reached.
 
         ``make_args`` builds the command again for each try (a read switches from new
-        entries to its own pending ones after a lost connection).
+        entries to its own pending ones after a lost connection); ``reading`` sends it on
+        the reading connection (:meth:`_execute_reading`).
         """
         import redis
+
+        execute = self._execute_reading if reading else (lambda c: self._execute(*c))
 
         def attempt():
             command = make_args() if make_args is not None else args
             if self._client is None:
                 self._connect_once()
             try:
-                return command, self._execute(*command)
+                return command, execute(command)
             except self._retriable():
                 self._lost_connection()
                 raise
@@ -424,7 +434,7 @@ class RedisStreamSource:
                 log.warning("%s: consumer group %r is gone; creating it again",
                             self.name, self._group)
                 self._create_group()
-                return command, self._execute(*command)
+                return command, execute(command)
 
         return with_retries(attempt, display=self.name, backoff=self._backoff,
                             give_up=self._retry, clock=self._clock, sleep=self._sleep,
@@ -442,6 +452,8 @@ class RedisStreamSource:
             self._cursor = self._last_text.encode() if self._last_text else b"0"
 
     def _drop_client(self) -> None:
+        self._read_conn = None          # closed with the client's connections
+        self._in_flight = None
         client, self._client = self._client, None
         if client is not None:
             try:
@@ -470,7 +482,7 @@ class RedisStreamSource:
         cursor = b"0-0"
         while True:
             _, reply = self._call("XAUTOCLAIM", self._stream, self._group, self._consumer,
-                                  0, cursor, "COUNT", _CLAIM_COUNT, "JUSTID")
+                                  0, cursor, "COUNT", _CLAIM_COUNT, "JUSTID", reading=True)
             cursor = reply[0]
             deleted = reply[2] if len(reply) > 2 else []
             for raw_id in deleted:
@@ -481,16 +493,19 @@ class RedisStreamSource:
             if cursor in (b"0-0", "0-0"):
                 return rejects
 
+    def _read_command(self, block_ms: int) -> tuple:
+        args = ("XREADGROUP", "GROUP", self._group, self._consumer,
+                "COUNT", min(self._batch_rows, READ_COUNT))
+        if self._cursor == b">":
+            args += ("BLOCK", block_ms)  # reading pending entries never blocks
+        return args + ("STREAMS", self._stream, self._cursor)
+
     def _read(self, block_ms: int) -> tuple[list, bool]:
         """(entries, True when they are this consumer's pending ones)."""
         def make_args() -> tuple:
-            args = ("XREADGROUP", "GROUP", self._group, self._consumer,
-                    "COUNT", min(self._batch_rows, READ_COUNT))
-            if self._cursor == b">":
-                args += ("BLOCK", block_ms)  # reading pending entries never blocks
-            return args + ("STREAMS", self._stream, self._cursor)
+            return self._read_command(block_ms)
 
-        command, reply = self._call(make_args=make_args)
+        command, reply = self._call(make_args=make_args, reading=True)
         pending = command[-1] != b">"
         return (reply[0][1] if reply else []), pending
 
@@ -534,6 +549,8 @@ class RedisStreamSource:
                     self._cursor = b">"
                     continue
                 self._cursor = entries[-1][0]
+            elif entries:
+                self._read_ahead(block_ms)
             batch = self._batch(entries)
             if batch is not None:
                 yield batch
@@ -549,12 +566,62 @@ class RedisStreamSource:
                 if self.on_quiet is not None:
                     self.on_quiet()
 
+    # ------------------------------------------------------------------ reading connection
+    def _reading_connection(self):
+        """The connection that carries this source's reads (XREADGROUP, XAUTOCLAIM,
+        XPENDING), taken from the client's pool and kept, its server id known for
+        :meth:`_close_stale`; None on a cluster (reads go through the cluster client,
+        which follows redirections). Acknowledgements and fencing use the pool's other
+        connections, so they never wait behind a read in flight."""
+        import redis
+
+        if self.cluster:
+            return None
+        if self._read_conn is None:
+            conn = self._client.connection_pool.get_connection()
+            try:
+                conn.send_command("CLIENT", "ID")
+                self._client_id = (node_address(self._client), int(conn.read_response()))
+            except redis.ResponseError:  # an ACL without CLIENT ID: nothing to close later
+                self._client_id = (node_address(self._client), None)
+            self._read_conn = conn
+        return self._read_conn
+
+    def _execute_reading(self, command: tuple):
+        """Send a reading command on the reading connection and return its raw reply;
+        a read sent ahead (:meth:`_read_ahead`) is this command's reply when it is the
+        same command, and is read and set aside otherwise (its entries are this
+        consumer's pending ones, which a read of pending entries comes to)."""
+        conn = self._reading_connection()
+        if conn is None:
+            return self._execute(*command)
+        ahead, self._in_flight = self._in_flight, None
+        if ahead is not None:
+            reply = conn.read_response()
+            if ahead == command:
+                return reply
+        conn.send_command(*command)
+        return conn.read_response()
+
+    def _read_ahead(self, block_ms: int) -> None:
+        """Send the next read of new entries now, so the server prepares it while this
+        batch is parsed and learned (one read in flight at most; not on a cluster)."""
+        conn = None if self._client is None else self._reading_connection()
+        if conn is None or self._in_flight is not None or self._cursor != b">":
+            return
+        command = self._read_command(block_ms)
+        try:
+            conn.send_command(*command)
+        except self._retriable():
+            return                       # the next read meets the broken connection
+        self._in_flight = command
+
     def _skipped_pending(self, first: bytes) -> bool:
         """Whether this consumer holds pending entries between the last one handed out
         and ``first``, the first of a read of new entries (XPENDING, extended form)."""
         start = "(" + self._last_text if self._last_text else "-"
         _, reply = self._call("XPENDING", self._stream, self._group, start,
-                              b"(" + first, 1, self._consumer)
+                              b"(" + first, 1, self._consumer, reading=True)
         return bool(reply)
 
     def _unread_pending(self) -> bool:
@@ -562,7 +629,7 @@ class RedisStreamSource:
         assigned by a command whose reply was lost (XPENDING, extended form)."""
         start = "(" + self._last_text if self._last_text else "-"
         _, reply = self._call("XPENDING", self._stream, self._group, start, "+", 1,
-                              self._consumer)
+                              self._consumer, reading=True)
         return bool(reply)
 
     def _batch(self, entries: list) -> RawBatch | None:

@@ -183,35 +183,40 @@ def test_a_dead_consumers_entries_are_claimed(server, stream):
     assert pending_count(server, stream) == 0
 
 
-def test_a_reply_lost_with_the_connection_does_not_skip_entries(server, stream):
+def test_a_reply_lost_with_the_connection_does_not_skip_entries(server, stream, monkeypatch):
     """The server may assign entries to the consumer (XREADGROUP '>') and the reply be
     lost with the connection; those entries are then pending but unseen. The source
-    reads its own pending entries after the last one it handed out before new ones."""
+    reads its own pending entries after the last one it handed out before new ones.
+    Here the lost reply is that of the read sent ahead while entries 0-2 were handed
+    out: it assigned entries 3-5."""
     import redis
 
-    add(server, stream, 6)
+    ids = add(server, stream, 6)
+    real = redis.connection.Connection.read_response
+    dropped = []
+
+    def drop_reply(conn, *args, **kw):
+        reply = real(conn, *args, **kw)
+        if not dropped and isinstance(reply, list) and reply and \
+                isinstance(reply[0], list) and reply[0][0] == stream.encode() and \
+                reply[0][1] and reply[0][1][0][0] == ids[3].encode():
+            dropped.append(reply)
+            conn.disconnect()
+            raise redis.ConnectionError("connection reset (test)")
+        return reply
+
+    monkeypatch.setattr(redis.connection.Connection, "read_response", drop_reply)
     src = RedisStreamSource(server.url(stream=stream), 3, idle_exit=0, retry=5,
                             rng=random.Random(1), sleep=lambda s: None)
     it = src.batches()
     first = next(it)
     assert values([first]) == [0, 1, 2]
-    client = src._client
-    real = client.execute_command
-    dropped = []
-
-    def drop_reply(*args, **kw):
-        reply = real(*args, **kw)
-        if args[0] == "XREADGROUP" and args[-1] == b">" and not dropped:
-            dropped.append(reply)
-            raise redis.ConnectionError("connection reset (test)")
-        return reply
-
-    client.execute_command = drop_reply
     add(server, stream, 3, start=6)
     rest = list(it)
     src.close()
     assert dropped and values([first] + rest) == list(range(9))
     assert src.reconnects == 1
+    assert pending_count(server, stream) == 9      # handed out, not acknowledged here
 
 
 # ---------------------------------------------------------------------------------------
