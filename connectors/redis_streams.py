@@ -240,6 +240,9 @@ class RedisStreamSource:
         self._cursor: bytes = b"0"  # an id: own pending entries after it; b">": new ones
         self._read_conn = None      # the connection of reads (none on a cluster)
         self._in_flight: tuple | None = None  # a read sent ahead, its reply not yet read
+        self._ack_conn = None       # the connection of acknowledgements
+        self._acks_sent: tuple | None = None  # (connection, commands) whose replies wait
+        self._acks_unsure: list[tuple] | None = None  # sent on a connection since lost
         self._recovered = False
         self._closed = False
         self.fence: Fence | None = None
@@ -452,8 +455,11 @@ class RedisStreamSource:
             self._cursor = self._last_text.encode() if self._last_text else b"0"
 
     def _drop_client(self) -> None:
-        self._read_conn = None          # closed with the client's connections
+        self._read_conn = self._ack_conn = None   # closed with the client's connections
         self._in_flight = None
+        if self._acks_sent is not None:           # their replies are lost with them:
+            self._acks_unsure = self._acks_sent[1]  # sent again by _settle_acks
+            self._acks_sent = None
         client, self._client = self._client, None
         if client is not None:
             try:
@@ -462,16 +468,77 @@ class RedisStreamSource:
                 pass
 
     def _ack(self, ids: Sequence[bytes]) -> None:
+        """Acknowledge ``ids``: the commands are sent now and their replies read by
+        :meth:`_settle_acks` before anything else this source does (the next batch, a
+        fence check, the next acknowledgement, the end), so the server works on them
+        while the run goes on. On a cluster they are sent one by one and waited for."""
+        self._settle_acks()
         if self.fence is None:
-            for i in range(0, len(ids), _ACK_CHUNK):
-                self._call("XACK", self._stream, self._group, *ids[i:i + _ACK_CHUNK])
+            commands = [("XACK", self._stream, self._group, *ids[i:i + _ACK_CHUNK])
+                        for i in range(0, len(ids), _ACK_CHUNK)]
+        else:
+            commands = [self.fence.ack_command(self._group, list(ids[i:i + ACK_CHUNK]))
+                        for i in range(0, len(ids), ACK_CHUNK)]
+        conn = self._ack_connection()
+        if conn is None:
+            self._ack_now(commands)
             return
-        for i in range(0, len(ids), ACK_CHUNK):
-            self._call(*self.fence.ack_command(self._group, list(ids[i:i + ACK_CHUNK])))
+        try:
+            for command in commands:
+                conn.send_command(*command)
+        except self._retriable():
+            self._ack_conn = None
+            self._ack_now(commands)      # reconnects; an acknowledgement may be repeated
+            return
+        self._acks_sent = (conn, commands)
+
+    def _ack_now(self, commands: list[tuple]) -> None:
+        for command in commands:
+            self._call(*command)
+
+    def _ack_connection(self):
+        """The connection that carries acknowledgements (taken from the client's pool
+        and kept), or None on a cluster or before the first connection."""
+        if self.cluster or self._client is None:
+            return None
+        if self._ack_conn is None:
+            self._ack_conn = self._client.connection_pool.get_connection()
+        return self._ack_conn
+
+    def _settle_acks(self) -> None:
+        """Read the replies of the acknowledgements sent; raise SupersededError when a
+        later learner had started; send them again (and wait) when the connection broke
+        or the group was gone (XACK of an acknowledged entry changes nothing)."""
+        import redis
+
+        unsure, self._acks_unsure = self._acks_unsure, None
+        if unsure is not None:
+            self._ack_now(unsure)
+        sent, self._acks_sent = self._acks_sent, None
+        if sent is None:
+            return
+        conn, commands = sent
+        refused: list[str] = []
+        try:
+            for _ in commands:
+                try:
+                    conn.read_response()
+                except redis.ResponseError as exc:
+                    refused.append(str(exc))
+        except self._retriable():
+            self._ack_conn = None
+            self._ack_now(commands)
+            return
+        superseded = [r for r in refused if r.startswith("SUPERSEDED")]
+        if superseded and self.fence is not None:
+            raise self.fence.superseded(superseded[0].split()[-1])
+        if refused:
+            self._ack_now(commands)      # e.g. NOGROUP: the usual path creates it again
 
     def fence_check(self) -> None:
         """Raise SupersededError if a later learner of this stream has started (called
         before a checkpoint file changes); nothing when the source is not fenced."""
+        self._settle_acks()
         if self.fence is not None:
             self.fence.check()
 
@@ -532,6 +599,7 @@ class RedisStreamSource:
                                                  "URL") from None
             claimed = self._claim_others() if self._claim else []
             if claimed:
+                self._settle_acks()
                 yield RawBatch(pd.DataFrame(index=pd.RangeIndex(0)), self._stream,
                                np.empty(0, np.int64), claimed, self._position())
         last_entry = self._clock()
@@ -553,6 +621,7 @@ class RedisStreamSource:
                 self._read_ahead(block_ms)
             batch = self._batch(entries)
             if batch is not None:
+                self._settle_acks()
                 yield batch
                 last_entry = self._clock()   # quiet time counts from the reader's return
             elif not pending:
@@ -562,8 +631,10 @@ class RedisStreamSource:
                         self._cursor = self._last_text.encode() if self._last_text \
                             else b"0"
                         continue
+                    self._settle_acks()
                     return
                 if self.on_quiet is not None:
+                    self._settle_acks()
                     self.on_quiet()
 
     # ------------------------------------------------------------------ reading connection
@@ -691,6 +762,11 @@ class RedisStreamSource:
         return parsed
 
     def close(self) -> None:
-        """Close the connection (nothing is acknowledged); safe to call twice."""
-        self._closed = True
-        self._drop_client()
+        """Wait for the acknowledgements sent, then close the connections (nothing more
+        is acknowledged); safe to call twice."""
+        try:
+            if not self._closed:
+                self._settle_acks()
+        finally:
+            self._closed = True
+            self._drop_client()

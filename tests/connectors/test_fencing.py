@@ -65,10 +65,13 @@ def test_a_replaced_learner_can_neither_acknowledge_nor_pass_its_checks(server, 
     got = learn_numbers(new)
     # the replacement read what the old one held unacknowledged, then the rest
     assert got == list(range(100, 300))
+    # the acknowledgement is sent and refused by the server (the script compares the
+    # epoch); the refusal is read before anything else the old learner does
+    old.commit(second.position)
     with pytest.raises(SupersededError, match="another learner of this stream"):
-        old.commit(second.position)
-    with pytest.raises(SupersededError):
         old.fence_check()
+    with pytest.raises(SupersededError):
+        old.fence_check()                  # its own check of the epoch
     old.close()
     assert pending(server, stream) == 0
     assert old.fence.epoch + 1 == new.fence.epoch
