@@ -69,6 +69,7 @@ from .base import RawBatch
 from .broker_payloads import (DEFAULT_LINGER, MAX_MESSAGE_BYTES, PAYLOAD_FORMATS, Backoff,
                               Options, input_error, parse_address, parse_payloads,
                               with_retries)
+from .mqtt_receive import lean_client_available, lean_client_class
 
 log = logging.getLogger("sapwood.connectors")
 
@@ -140,6 +141,7 @@ class MqttSource:
     """
 
     on_quiet = None
+    _lean = True   # QoS 1 messages through connectors.mqtt_receive (tests compare paho's)
 
     def __init__(self, spec: str, batch_rows: int = 65536, *,
                  clock: Callable[[], float] = time.monotonic,
@@ -268,14 +270,17 @@ class MqttSource:
         import paho.mqtt.client as mqtt
         from paho.mqtt.enums import CallbackAPIVersion
 
+        lean = self._lean and lean_client_available()
+        make = lean_client_class() if lean else mqtt.Client
         if self._protocol == "5":
-            client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=self._client_id,
-                                 protocol=mqtt.MQTTv5, manual_ack=True,
-                                 reconnect_on_failure=False)
+            client = make(CallbackAPIVersion.VERSION2, client_id=self._client_id,
+                          protocol=mqtt.MQTTv5, manual_ack=True, reconnect_on_failure=False)
         else:
-            client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=self._client_id,
-                                 clean_session=False, protocol=mqtt.MQTTv311,
-                                 manual_ack=True, reconnect_on_failure=False)
+            client = make(CallbackAPIVersion.VERSION2, client_id=self._client_id,
+                          clean_session=False, protocol=mqtt.MQTTv311, manual_ack=True,
+                          reconnect_on_failure=False)
+        if lean:
+            client.receive = self._receive
         if self._username is not None:
             client.username_pw_set(self._username, self._password)
         if self._tls:
@@ -381,9 +386,17 @@ class MqttSource:
 
     # ------------------------------------------------------------------ messages
     def _on_message(self, client, userdata, message) -> None:
+        """paho's callback (packets the short path of :mod:`connectors.mqtt_receive`
+        leaves to paho)."""
+        payload = message.payload
+        self._receive(message.topic, payload if isinstance(payload, bytes) else bytes(payload),
+                      message.mid, message.qos, bool(message.dup), bool(message.retain))
+
+    def _receive(self, topic: str, payload: bytes, mid: int, qos: int, dup: bool,
+                 retain: bool) -> None:
         self._last_activity = self._clock()  # redeliveries too: the broker is not idle
-        mid = message.mid
-        if message.qos >= 1:
+        client = self._client
+        if qos >= 1:
             if mid in self._unacked_mids or mid in self._buffered_mids:
                 return  # sent again after a reconnect; already handed out or buffered
             skip = False
@@ -391,8 +404,8 @@ class MqttSource:
                 self._covered.discard(mid)
                 # DUP set: the covered message itself (a checkpoint already holds it);
                 # DUP clear: a first delivery reusing the id, so that one was acknowledged
-                skip = bool(message.dup)
-            if message.retain and self._protocol != "5" and self._session_present:
+                skip = dup
+            if retain and self._protocol != "5" and self._session_present:
                 skip = True  # 3.1.1 re-sends retained messages on every SUBSCRIBE
             if skip:
                 if not self._unacked and not self._buffered_mids:
@@ -403,9 +416,7 @@ class MqttSource:
                     self._buffered_mids.add(mid)
                 return
             self._buffered_mids.add(mid)
-        payload = message.payload
-        self._buffer.append((payload if isinstance(payload, bytes) else bytes(payload),
-                             message.topic, mid if message.qos >= 1 else 0))
+        self._buffer.append((payload, topic, mid if qos >= 1 else 0))
         self._buffered += 1
         if self._first_arrival is None:
             self._first_arrival = self._clock()

@@ -137,6 +137,61 @@ def test_messages_published_while_away_are_delivered_on_return(broker, cid, prot
     assert {b.origin for b in batches} == {"plant/a/telemetry"}
 
 
+@pytest.mark.parametrize("protocol", ["5", "3.1.1"])
+def test_the_short_receive_path_reads_what_paho_reads(broker, cid, protocol, monkeypatch):
+    """QoS 1 messages read by the short path (connectors/mqtt_receive.py, packet layout of
+    MQTT 3.1.1 and 5.0 section 3.3.2) give the batches paho-mqtt's own decoding gives:
+    payloads, topics, message numbers and quarantine reasons; a message carrying MQTT 5
+    properties is left to paho."""
+    import paho.mqtt.client as mqtt
+    from paho.mqtt.enums import CallbackAPIVersion
+    from paho.mqtt.packettypes import PacketTypes
+    from paho.mqtt.properties import Properties
+
+    urls = {lean: broker.url("plant/#", client_id=f"{cid}-{lean}", protocol=protocol)
+            for lean in (True, False)}
+    for url in urls.values():
+        subscribe_once(url)
+    client = mqtt.Client(CallbackAPIVersion.VERSION2, protocol=mqtt.MQTTv5)
+    client.connect("127.0.0.1", broker.port)
+    client.loop_start()
+    tagged = Properties(PacketTypes.PUBLISH)
+    tagged.UserProperty = ("line", "7")
+    messages = [("plant/a/t", json.dumps({"n": 0, "note": "caf\u00e9"}), 1, None),
+                ("plant/\u00e9/t", json.dumps({"n": 1, "note": "x"}), 1, None),
+                ("plant/a/t", json.dumps({"n": 2, "note": "tagged"}), 1, tagged),
+                ("plant/b/t", b"\xff not json", 1, None),
+                ("plant/a/t", "", 1, None),
+                ("plant/c/t", json.dumps({"n": 6, "note": "y" * 300}), 1, None)]
+    try:
+        for topic, payload, qos, props in messages:
+            client.publish(topic, payload, qos=qos, properties=props).wait_for_publish(10)
+    finally:
+        client.disconnect()
+        client.loop_stop()
+    seen = {True: 0, False: 0}
+    real = MqttSource._on_message
+
+    def counted(self, *args):
+        seen[self._lean] += 1
+        return real(self, *args)
+
+    monkeypatch.setattr(MqttSource, "_on_message", counted)
+    read = {}
+    for lean, url in urls.items():
+        src = source(url, 1000, idle_exit=0.5)
+        src._lean = lean
+        batches = read_all(src)
+        frame = pd.concat([b.frame for b in batches], ignore_index=True)
+        read[lean] = (frame.to_dict("list"), [b.lines.tolist() for b in batches],
+                      [(r.origin, r.line, r.reason) for b in batches for r in b.rejects])
+    assert read[True] == read[False]
+    assert read[True][0]["n"] == [0, 1, 2, 6] and len(read[True][2]) == 2
+    assert seen[False] == len(messages)
+    # paho decodes the message with properties (on 3.1.1 the broker drops them)
+    assert seen[True] == (1 if protocol == "5" else 0)
+
+
 def test_a_clean_session_would_have_lost_them(broker, cid):
     """Control for the test above: the same flow with a session the broker does not
     keep (MQTT 5.0 section 3.1.2.11.2: Session Expiry Interval 0 ends the session with
