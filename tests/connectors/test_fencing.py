@@ -20,7 +20,7 @@ import pytest
 
 from connectors.brokers import open_broker
 from connectors.local_brokers import REDIS_SERVER
-from connectors.redis_streams import entry_id
+from connectors.redis_streams import entry_id as parse_entry_id
 from stream.errors import EXIT_SUPERSEDED, SupersededError
 from tests.connectors.redis_records import add_hot_records, learn_numbers
 
@@ -57,9 +57,9 @@ def test_a_replaced_learner_can_neither_acknowledge_nor_pass_its_checks(server, 
     first = next(batches)
     old.commit(first.position)            # its own epoch: acknowledged
     # (the read it sent ahead of the run holds the next batch pending)
-    last = entry_id(first.position["last_id"])
+    last = parse_entry_id(first.position["last_id"])
     held = server.client().xpending_range(stream, "sapwood", "-", "+", 1000)
-    assert held and all(entry_id(e["message_id"]) > last for e in held)
+    assert held and all(parse_entry_id(e["message_id"]) > last for e in held)
     second = next(batches)                 # handed out, not acknowledged
     new = open_broker(server.url(stream=stream, idle_exit=0), 1000, retry=5)
     got = learn_numbers(new)
