@@ -236,13 +236,14 @@ class MqttSource:
     def commit(self, position: dict) -> None:
         """Acknowledge (PUBACK) every message up to ``position``, in arrival order."""
         upto = int(position["seq"])
-        client = self._client
+        mids: list[int] = []
         while self._unacked and self._unacked[0][0] <= upto:
             _, mid = self._unacked.popleft()
             self._unacked_mids.discard(mid)
             self._acked_on_connection.add(mid)
-            if client is not None:
-                client.ack(mid, 1)
+            mids.append(mid)
+        if self._client is not None:
+            self._send_pubacks(mids)
         self._flush_skips()
         self._warned_stall = False
 
@@ -251,15 +252,25 @@ class MqttSource:
         received before them still waits for a checkpoint."""
         if self._unacked or self._client is None:
             return
-        used = 0
+        mids: list[int] = []
         for payload, _, mid in self._buffer:
             if payload is not None:
                 break
-            self._client.ack(mid, 1)
             self._acked_on_connection.add(mid)
             self._buffered_mids.discard(mid)
-            used += 1
-        del self._buffer[:used]
+            mids.append(mid)
+        del self._buffer[:len(mids)]
+        self._send_pubacks(mids)
+
+    def _send_pubacks(self, mids: list[int]) -> None:
+        """PUBACK each packet id, in this order (one write for all of them on the short
+        path of :mod:`connectors.mqtt_receive`)."""
+        client = self._client
+        if hasattr(client, "ack_many"):
+            client.ack_many(mids)
+            return
+        for mid in mids:
+            client.ack(mid, 1)
 
     def _position(self, upto: int) -> dict:
         mids = [mid for seq, mid in self._unacked if seq <= upto]

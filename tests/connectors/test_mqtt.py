@@ -192,6 +192,30 @@ def test_the_short_receive_path_reads_what_paho_reads(broker, cid, protocol, mon
     assert seen[True] == (1 if protocol == "5" else 0)
 
 
+def test_pubacks_sent_together_are_the_bytes_paho_sends_one_by_one():
+    """The short path's PUBACKs of a commit, as one write, equal paho-mqtt's own PUBACK
+    packets for the same ids, in the same order."""
+    import paho.mqtt.client as mqtt
+    from paho.mqtt.enums import CallbackAPIVersion
+
+    from connectors.mqtt_receive import lean_client_class
+
+    mids = [1, 2, 255, 256, 4096, 65535]
+    for protocol in (mqtt.MQTTv5, mqtt.MQTTv311):
+        queued = {}
+        for name, make in (("paho", mqtt.Client), ("lean", lean_client_class())):
+            client = make(CallbackAPIVersion.VERSION2, protocol=protocol, manual_ack=True)
+            sent = queued[name] = []
+            client._packet_queue = lambda command, packet, mid, qos, info=None, sent=sent: \
+                sent.append(bytes(packet))
+            if name == "paho":
+                for mid in mids:
+                    client.ack(mid, 1)
+            else:
+                client.ack_many(mids)
+        assert queued["lean"] == [b"".join(queued["paho"])] and len(queued["lean"][0]) == 24
+
+
 def test_a_clean_session_would_have_lost_them(broker, cid):
     """Control for the test above: the same flow with a session the broker does not
     keep (MQTT 5.0 section 3.1.2.11.2: Session Expiry Interval 0 ends the session with
