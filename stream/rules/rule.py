@@ -2,7 +2,7 @@
 
 Rule
     Plain data, the same for both tasks (a regression rule carries ``estimate``).
-rule_id(leaf) -> str
+rule_id(leaf) -> str, rule_ids(leaves) -> array
     The id of the rule a leaf node stands for; ``Scored.leaf`` tells which rule fired.
 sort_rules(rules)
     The stable display order.
@@ -15,6 +15,8 @@ from __future__ import annotations
 import dataclasses
 import math
 from typing import Sequence
+
+import numpy as np
 
 from stream.tree.paths import Condition
 
@@ -79,6 +81,12 @@ def _round(value: float | None, digits: int = 6) -> float | None:
 def rule_id(leaf: int) -> str:
     """Id of the rule that leaf node ``leaf`` stands for."""
     return f"R{int(leaf)}"
+
+
+def rule_ids(leaves: np.ndarray) -> np.ndarray:
+    """``rule_id`` of each leaf, as an object array (made once per distinct leaf)."""
+    distinct, which = np.unique(np.asarray(leaves), return_inverse=True)
+    return np.array([rule_id(leaf) for leaf in distinct], dtype=object)[which]
 
 
 def sort_rules(rules: list[Rule]) -> list[Rule]:

@@ -32,7 +32,7 @@ from stream.regress.settings import (
 )
 from stream.rules.classify import extract_rules
 from stream.rules.regress import extract_regression_rules
-from stream.rules.rule import Rule, rule_id
+from stream.rules.rule import Rule, rule_ids
 
 from .metrics import CONCERN_AFTER, ClassificationScore, RegressionScore
 
@@ -123,7 +123,7 @@ class ClassificationTask:
     def prediction_columns(self, scored, encoder) -> dict:
         labels = np.array(list(encoder.classes) + [""], dtype=object)
         return {"predicted": labels[scored.pred], "confidence": np.round(scored.confidence, 6),
-                "rule": np.array([rule_id(n) for n in scored.leaf], dtype=object)}
+                "rule": rule_ids(scored.leaf)}
 
     def rules(self, categories: dict) -> list[Rule]:
         return extract_rules(self.model, categories)
@@ -187,7 +187,7 @@ class RegressionTask:
 
     def prediction_columns(self, scored, encoder) -> dict:
         return {"predicted": np.round(scored.pred, 6),
-                "rule": np.array([rule_id(n) for n in scored.leaf], dtype=object)}
+                "rule": rule_ids(scored.leaf)}
 
     def rules(self, categories: dict) -> list[Rule]:
         return extract_regression_rules(self.model, categories)

@@ -41,7 +41,8 @@ from stream.classify.tables import (CHILD_START, CREATED, DEPTH, EQUALS, FEATURE
                                     S_LEAVES, S_NODES, SCORED, SLOT, THRESHOLD, WEIGHT)
 from stream.cli.main import main
 from stream.rules.classify import extract_rules
-from stream.rules.rule import Rule, rule_id, rules_from_payload, rules_payload, sort_rules
+from stream.rules.rule import (Rule, rule_id, rule_ids, rules_from_payload, rules_payload,
+                               sort_rules)
 from stream.rules.text import render_text
 from stream.rules.thresholds import format_number
 from stream.run.engine import run_learn
@@ -433,3 +434,10 @@ def test_an_empty_tree_reads_always():
     assert text.splitlines()[:6] == ["sapwood rules for fault", "1 rule", "",
                                      "R0  ALWAYS", "    THEN (no records yet)",
                                      "         confidence 0.0%, coverage 0.0%, 0 records"]
+
+
+@settings(max_examples=50, deadline=None)
+@given(st.lists(st.integers(0, 5000), max_size=60))
+def test_rule_ids_of_a_batch_are_each_leafs_rule_id(leaves):
+    got = rule_ids(np.array(leaves, dtype=np.int64))
+    assert got.dtype == object and got.tolist() == [rule_id(leaf) for leaf in leaves]
