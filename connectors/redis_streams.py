@@ -679,6 +679,8 @@ class RedisStreamSource:
             reply = conn.read_response()
             if ahead == command:
                 return reply
+            if reply:       # entries it assigned are read again from the pending list
+                self._cursor = self._last_text.encode() if self._last_text else b"0"
         conn.send_command(*command)
         return conn.read_response()
 
