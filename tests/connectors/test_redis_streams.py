@@ -219,6 +219,23 @@ def test_a_reply_lost_with_the_connection_does_not_skip_entries(server, stream, 
     assert pending_count(server, stream) == 9      # handed out, not acknowledged here
 
 
+def test_a_read_sent_ahead_then_set_aside_is_read_again_in_order(server, stream):
+    """While a batch is handed out the next read of new entries is already sent; when
+    another reading command takes the connection first, that read's reply is set aside
+    and the entries it assigned are read from the pending list before newer ones."""
+    add(server, stream, 6)
+    src = RedisStreamSource(server.url(stream=stream, fence="false"), 3, idle_exit=0,
+                            retry=5)
+    it = src.batches()
+    first = next(it)
+    assert values([first]) == [0, 1, 2] and src._in_flight is not None
+    src._unread_pending()          # a reading command of its own (XPENDING) goes first
+    add(server, stream, 3, start=6)
+    rest = list(it)
+    src.close()
+    assert values([first] + rest) == list(range(9))
+
+
 # ---------------------------------------------------------------------------------------
 # payloads and bad input
 # ---------------------------------------------------------------------------------------
