@@ -28,6 +28,7 @@ from stream.tree.paths import node_conditions
 
 from .attempts import begin_attempt
 from .checkpoint import ResumableOutput, fsync_length, truncate_for_resume
+from .csv_rows import csv_text
 from .encoding import EncodedBatch
 from .job import DEFAULT_QUARANTINE, LearnJob
 from .snapshots import SnapshotSchedule, SnapshotStore
@@ -102,7 +103,9 @@ class PredictionFile:
         if not len(frame):
             return
         if self.csv:
-            self._out.write(frame.to_csv(index=False, header=self._header))
+            text = csv_text(frame, self._header)
+            self._out.write(text if text is not None
+                            else frame.to_csv(index=False, header=self._header))
         else:
             text = frame.to_json(orient="records", lines=True)
             self._out.write(text if text.endswith("\n") else text + "\n")
