@@ -28,7 +28,7 @@ from stream.tree.paths import node_conditions
 
 from .attempts import begin_attempt
 from .checkpoint import ResumableOutput, fsync_length, truncate_for_resume
-from .csv_rows import csv_text
+from .prediction_text import csv_text, json_lines_text
 from .encoding import EncodedBatch
 from .job import DEFAULT_QUARANTINE, LearnJob
 from .snapshots import SnapshotSchedule, SnapshotStore
@@ -107,7 +107,9 @@ class PredictionFile:
             self._out.write(text if text is not None
                             else frame.to_csv(index=False, header=self._header))
         else:
-            text = frame.to_json(orient="records", lines=True)
+            text = json_lines_text(frame)
+            if text is None:
+                text = frame.to_json(orient="records", lines=True)
             self._out.write(text if text.endswith("\n") else text + "\n")
         self._header = False
         self._out.flush()
