@@ -38,9 +38,8 @@ def _column_texts(values: np.ndarray) -> list[str] | None:
         return list(map(str, values.tolist()))
     if kind == "f":
         texts = list(map(repr, values.tolist()))
-        if np.isnan(values).any():
-            for i in np.flatnonzero(np.isnan(values)).tolist():
-                texts[i] = ""
+        for i in np.flatnonzero(np.isnan(values)).tolist():
+            texts[i] = ""
         return texts
     if kind == "O":
         items = values.tolist()
@@ -78,6 +77,11 @@ MAX_DISTINCT_TEXTS = 2000
 pandas writes the frame (a column of record ids, say)."""
 
 
+def _json_string(text: str) -> str:
+    """``text`` as pandas' JSON writer quotes and escapes it."""
+    return pd.Series([text], dtype=object).to_json(orient="values")[1:-1]
+
+
 def _json_values(values: np.ndarray) -> list[str] | None:
     kind = values.dtype.kind
     if kind in "iuf":
@@ -90,8 +94,7 @@ def _json_values(values: np.ndarray) -> list[str] | None:
         distinct = set(items)
         if len(distinct) > MAX_DISTINCT_TEXTS:
             return None
-        text = {item: pd.Series([item], dtype=object).to_json(orient="values")[1:-1]
-                for item in distinct}
+        text = {item: _json_string(item) for item in distinct}
         return [text[item] for item in items]
     return None
 
@@ -108,7 +111,7 @@ def json_lines_text(frame: pd.DataFrame) -> str | None:
         values = _json_values(frame[name].to_numpy())
         if values is None:
             return None
-        key = pd.Series([name], dtype=object).to_json(orient="values")[1:-1]
+        key = _json_string(name)
         pieces.append(itertools.repeat(("{" if i == 0 else ",") + key + ":"))
         pieces.append(values)
     pieces.append(itertools.repeat("}"))
